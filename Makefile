@@ -1,0 +1,32 @@
+# Two entry points a newcomer needs: `make run` and `make test`. Both create .venv on first use.
+PY ?= python3
+VENV := .venv
+BIN := $(VENV)/bin
+STAMP := $(VENV)/.installed
+
+.PHONY: run demo test lint bench clean
+
+$(STAMP): pyproject.toml
+	$(PY) -m venv $(VENV)
+	$(BIN)/pip install --quiet --upgrade pip
+	$(BIN)/pip install --quiet -e '.[test]'
+	touch $(STAMP)
+
+demo: $(STAMP)
+	$(BIN)/python -m service.sampling.demo
+
+run: demo
+
+lint: $(STAMP)
+	$(BIN)/ruff check .
+	$(BIN)/ruff format --check .
+	$(BIN)/mypy
+
+test: lint
+	$(BIN)/python -m pytest -q
+
+bench: $(STAMP)
+	$(BIN)/python loadtest/bench_sampling.py
+
+clean:
+	rm -rf $(VENV) .pytest_cache .mypy_cache .ruff_cache .hypothesis

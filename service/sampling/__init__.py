@@ -1,0 +1,39 @@
+"""The sampling core: pure numpy functions that turn logits into tokens under a chain.
+
+No web, metrics or model imports live here; the HTTP layer, the model runner and the benchmarks
+all call this same API (DESIGN.md section 1)::
+
+    chain = parse_chain([{"temperature": 0.8}, {"top_k": 50}, {"top_p": 0.9}], min_keep=1)
+    out = pick(chain, logits, seed=7)          # tokens and per-row diagnostics
+    probs = final_distribution(chain, logits)  # float64 [B, V], zero outside the kept set
+"""
+
+from service.sampling.chain import (
+    METHODS,
+    SCALAR_METHODS,
+    TRUNCATION_METHODS,
+    Chain,
+    ChainError,
+    OccurrencePenalty,
+    RepetitionPenalty,
+    Stage,
+    parse_chain,
+)
+from service.sampling.core import InputError, PickResult, as_batch, final_distribution, pick
+
+__all__ = [
+    "METHODS",
+    "SCALAR_METHODS",
+    "TRUNCATION_METHODS",
+    "Chain",
+    "ChainError",
+    "InputError",
+    "OccurrencePenalty",
+    "PickResult",
+    "RepetitionPenalty",
+    "Stage",
+    "as_batch",
+    "final_distribution",
+    "parse_chain",
+    "pick",
+]

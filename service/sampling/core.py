@@ -180,7 +180,8 @@ def _diagnostics(raw: F32, top: float) -> _Diagnostics:
     shifted = raw - np.float32(top)
     e = np.exp(shifted)
     z = float(e.sum(dtype=np.float64))
-    s = float(np.dot(e, shifted))
+    with np.errstate(invalid="ignore"):
+        s = float(np.dot(e, shifted))
     if not math.isfinite(s):  # -inf entries give 0 * -inf; they carry no mass
         s = float(np.dot(e, np.where(e > 0, shifted, np.float32(0))))
     return _Diagnostics(raw, top + math.log(z), math.log(z) - s / z)
@@ -352,12 +353,20 @@ def _keep_top(row: _Row, m: int) -> None:
 
 def _min_p(row: _Row, stage: Stage, history: list[int], min_keep: int) -> None:
     ratio = stage.number
-    if row.cand is None:
+    was_full = row.cand is None
+    if was_full:
         _narrow_for_min_p(row, ratio)
     assert row.w is not None
+    if row.w.size == 0:
+        return
     # p_i >= ratio * p_max  <=>  exp(w_i - w_max) >= ratio (the normaliser cancels).
-    relative = np.exp(row.w - row.w.max())
-    _keep_where(row, relative >= ratio, min_keep)
+    keep = np.flatnonzero(np.exp(row.w - row.w.max()) >= ratio)
+    if keep.size < min_keep and was_full:
+        # The rescue ranks every survivor, not just the narrowed candidates.
+        row.cand = row.w = None
+        _keep_top(row, min_keep)
+        return
+    _keep_positions(row, keep, min_keep)
 
 
 def _narrow_for_min_p(row: _Row, ratio: float) -> None:

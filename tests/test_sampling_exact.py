@@ -1,0 +1,152 @@
+"""keepset's fast selection must give what a full sort gives: compared with the plain reference
+in sampling_reference.py on thousands of random rows (hypothesis plus a seeded sweep)."""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+from sampling_reference import reference_row
+
+from service.sampling import final_distribution, parse_chain, pick
+
+ROWS_CHECKED = {"hypothesis": 0, "sweep": 0, "ambiguous": 0}
+
+
+def _stage(draw: Any, vocab: int) -> dict[str, Any]:
+    method = draw(
+        st.sampled_from(
+            [
+                "temperature",
+                "repetition_penalty",
+                "occurrence_penalty",
+                "token_bias",
+                "ban",
+                "top_k",
+                "top_p",
+                "typical",
+                "min_p",
+                "epsilon",
+                "eta",
+                "greedy",
+            ]
+        )
+    )
+    unit = st.floats(0.01, 1.0)
+    if method == "temperature":
+        return {method: draw(st.sampled_from([0.05, 0.5, 0.8, 1.0, 1.5, 3.0]))}
+    if method == "repetition_penalty":
+        return {method: {"factor": draw(st.floats(1.0, 3.0)), "window": draw(st.integers(1, 8))}}
+    if method == "occurrence_penalty":
+        return {method: {"per_use": draw(st.floats(0, 2)), "present": draw(st.floats(0, 2))}}
+    if method == "token_bias":
+        ids = draw(st.lists(st.integers(0, vocab - 1), min_size=1, max_size=3, unique=True))
+        return {method: {i: draw(st.integers(-20, 20)) / 4 for i in ids}}
+    if method == "ban":
+        return {method: draw(st.lists(st.integers(0, vocab - 1), min_size=1, max_size=4))}
+    if method == "top_k":
+        return {method: draw(st.integers(1, max(1, vocab + 2)))}
+    if method in ("top_p", "typical", "min_p"):
+        return {method: draw(st.one_of(unit, st.sampled_from([0.5, 0.9, 0.95, 1.0])))}
+    if method in ("epsilon", "eta"):
+        return {method: draw(st.floats(1e-5, 0.5))}
+    return {"greedy": True}
+
+
+@st.composite
+def cases(draw: Any) -> tuple[list[dict[str, Any]], int, np.ndarray, list[list[int]]]:
+    vocab = draw(st.one_of(st.integers(2, 64), st.integers(65, 2000), st.integers(4097, 12000)))
+    rows = draw(st.integers(1, 8))
+    seed = draw(st.integers(0, 2**32 - 1))
+    kind = draw(st.sampled_from(["normal", "quantised", "peaky", "flat", "masked"]))
+    rng = np.random.default_rng(seed)
+    scale = draw(st.sampled_from([0.1, 1.0, 3.0, 8.0]))
+    x = rng.standard_normal((rows, vocab)) * scale
+    if kind == "quantised":  # exact ties everywhere
+        x = np.round(x * 2) / 2
+    elif kind == "peaky":
+        x[np.arange(rows), rng.integers(0, vocab, rows)] += 25.0
+    elif kind == "flat":
+        x = np.zeros((rows, vocab))
+    elif kind == "masked":
+        x[rng.random((rows, vocab)) < 0.6] = -np.inf
+        x[:, rng.integers(0, vocab)] = 0.0  # keep every row with one finite entry
+    stages = [_stage(draw, vocab) for _ in range(draw(st.integers(1, 4)))]
+    min_keep = draw(st.sampled_from([1, 1, 2, 3]))
+    history = [list(rng.integers(0, vocab, draw(st.integers(0, 6)))) for _ in range(rows)]
+    return stages, min_keep, x.astype(np.float32), history
+
+
+def _compare(
+    stages: list[dict[str, Any]], min_keep: int, x: np.ndarray, history: list[list[int]]
+) -> int:
+    chain = parse_chain(stages, min_keep=min_keep)
+    got = final_distribution(chain, x, history=history)
+    out = pick(chain, x, seed=3, history=history)
+    for b in range(x.shape[0]):
+        want, reason, ambiguous = reference_row(stages, min_keep, x[b], history[b])
+        assert out.fallback[b] == reason
+        if ambiguous:
+            ROWS_CHECKED["ambiguous"] += 1
+            continue
+        assert want[out.tokens[b]] > 0, "drawn token outside the reference kept set"
+        np.testing.assert_array_equal(np.flatnonzero(got[b]), np.flatnonzero(want))
+        np.testing.assert_allclose(got[b], want, atol=1e-6, rtol=0)
+    return x.shape[0]
+
+
+# derandomize: CI runs the same examples every time; change the seed source to explore more.
+@settings(
+    max_examples=800,
+    deadline=None,
+    derandomize=True,
+    suppress_health_check=[HealthCheck.too_slow],
+)
+@given(cases())
+def test_matches_sort_reference_on_random_rows(case: Any) -> None:
+    ROWS_CHECKED["hypothesis"] += _compare(*case)
+
+
+SWEEP_CHAINS: list[list[dict[str, Any]]] = [
+    [{"temperature": 0.8}, {"top_k": 50}, {"top_p": 0.9}, {"typical": 0.95}, {"min_p": 0.02}],
+    [{"top_k": 1}],
+    [{"top_k": 200}],
+    [{"top_p": 0.5}],
+    [{"top_p": 0.99}],
+    [{"typical": 0.2}],
+    [{"typical": 0.9}],
+    [{"min_p": 0.05}],
+    [{"min_p": 0.3}],
+    [{"epsilon": 3e-4}],
+    [{"eta": 3e-4}],
+    [{"greedy": True}],
+    [{"repetition_penalty": {"factor": 1.3, "window": 16}}, {"temperature": 0.7}, {"top_k": 40}],
+    [{"ban": [0, 1, 2]}, {"token_bias": {3: 4.0}}, {"min_p": 0.1}],
+    [{"temperature": 1.3}, {"min_p": 0.05}, {"top_p": 0.8}],
+]
+
+
+def test_sweep_over_large_vocabularies() -> None:
+    """Seeded rows at vocabulary sizes where the threshold shortcuts are active."""
+    rng = np.random.default_rng(20240611)
+    for vocab in (5000, 20000, 50000):
+        for stages in SWEEP_CHAINS:
+            for kind in ("normal", "quantised", "peaky"):
+                x = rng.standard_normal((4, vocab)) * 3
+                if kind == "quantised":
+                    x = np.round(x)
+                elif kind == "peaky":
+                    x[:, rng.integers(0, vocab, 4)] += 15
+                history = [list(rng.integers(0, vocab, 20)) for _ in range(4)]
+                ROWS_CHECKED["sweep"] += _compare(stages, 1, x.astype(np.float32), history)
+
+
+def test_report_row_count() -> None:
+    # Runs last in this file: the exactness tests above must have covered thousands of rows.
+    total = ROWS_CHECKED["hypothesis"] + ROWS_CHECKED["sweep"]
+    print(f"\nexactness rows: {ROWS_CHECKED}")
+    assert total >= 2000, ROWS_CHECKED
+    # Flat and quantised rows put many cumulative sums exactly on a threshold; keep that a minority.
+    assert ROWS_CHECKED["ambiguous"] < 0.1 * total

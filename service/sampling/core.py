@@ -1,12 +1,9 @@
 """Applying a chain to a batch of logits: the kept set, the final distribution, the draw.
 
-The rules are those of DESIGN.md section 1. Each row is worked on lazily: while every finite
-token still survives, the working logits are the raw float32 row divided by the accumulated
-temperature plus a few sparse edits (penalties, biases, bans), so nothing of vocabulary size is
-copied. Stages that only rank tokens (top_k, min_p, greedy) run on the raw row through exact
-threshold selection; stages that need the whole renormalised distribution (top_p, typical,
-epsilon, eta) first materialise the survivors in float64. From the first truncation on, the row
-is a small set of candidate ids with float64 working logits, and everything after is cheap.
+The rules are those of DESIGN.md section 1. Each row is first cut down to a candidate set
+without copying the vocabulary (``full``); the stage rules then run on all rows at once
+(``batch``). Rows the chain cannot decide (non-finite logits, nothing left) go to the chain's
+fallback, then to greedy. Diagnostics describe the raw model: softmax of the finite raw logits.
 """
 
 from __future__ import annotations
@@ -14,7 +11,6 @@ from __future__ import annotations
 import math
 import os
 import secrets
-from collections import Counter
 from collections.abc import Sequence
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
@@ -22,8 +18,9 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import NDArray
 
-from service.sampling.chain import Chain, OccurrencePenalty, RepetitionPenalty, Stage
-from service.sampling.select import shortest_prefix, top_positions
+from service.sampling.batch import RULES, Candidates, probabilities
+from service.sampling.chain import Chain
+from service.sampling.full import narrow_row
 
 # Fresh seeds stay below 2**53 so that any JSON client can echo them back exactly.
 _FRESH_SEED_BITS = 53
@@ -33,6 +30,7 @@ _PARALLEL_MIN_ELEMENTS = 1 << 18
 F32 = NDArray[np.float32]
 F64 = NDArray[np.float64]
 IntArray = NDArray[np.intp]
+Logits = NDArray[np.floating] | Sequence[float] | Sequence[Sequence[float]]
 
 
 class InputError(ValueError):
@@ -58,28 +56,20 @@ class PickResult:
     seed: int
 
 
-@dataclass
-class _Row:
-    """One row while the chain runs. ``cand is None`` means every finite raw token survives,
-    with working logit ``raw[i] / temp`` unless ``edits`` overrides it."""
-
-    raw: F32
-    temp: float
-    edits: dict[int, float]
-    cand: IntArray | None = None
-    w: F64 | None = None
-
-
 @dataclass(frozen=True)
-class _Decision:
-    ids: IntArray  # kept token ids, ascending
-    probs: F64  # final probabilities of ``ids``
-    fallback: str | None
+class _Group:
+    """Rows decided the same way: their kept ids and final probabilities, padded to [n, K]."""
+
+    rows: IntArray
+    ids: IntArray
+    probs: F64
+    kept: NDArray[np.bool_]
+    reason: str | None
 
 
 def pick(
     chain: Chain,
-    logits: NDArray[np.floating] | Sequence[float] | Sequence[Sequence[float]],
+    logits: Logits,
     seed: int | None = None,
     history: Sequence[Sequence[int]] | None = None,
     *,
@@ -99,40 +89,48 @@ def pick(
     _check_seed(seed)
     histories = _histories(history, rows.shape)
     _check_token_ids(chain, rows.shape[1])
+    rows, groups, log_norm, entropy = _resolve(chain, rows, histories, threads)
     uniforms = _uniforms(seed, first_stream, rows.shape[0])
-    decided = _run_rows(chain, rows, histories, threads)
     n = rows.shape[0]
     tokens = np.empty(n, np.int64)
     kept = np.empty(n, np.int64)
     kept_mass = np.empty(n)
-    entropy = np.empty(n)
     prob = np.empty(n)
-    logprob = np.empty(n)
-    fallback: list[str | None] = []
-    for b, (decision, diag) in enumerate(decided):
-        cdf = np.cumsum(decision.probs)
-        at = min(int(np.searchsorted(cdf, uniforms[b] * cdf[-1], side="right")), cdf.size - 1)
-        token = int(decision.ids[at])
-        tokens[b], kept[b], prob[b] = token, decision.ids.size, decision.probs[at]
-        entropy[b] = diag.entropy
-        kept_mass[b] = diag.mass_of(decision.ids)
-        logprob[b] = diag.logprob(token)
-        fallback.append(decision.fallback)
+    fallback: list[str | None] = [None] * n
+    for g in groups:
+        r = np.arange(g.rows.size)
+        cdf = np.cumsum(g.probs, axis=1)
+        at = (cdf <= (uniforms[g.rows] * cdf[:, -1])[:, None]).sum(axis=1)
+        # Rounding can put u * total at the very top: take the last kept entry then.
+        last = g.kept.shape[1] - 1 - np.argmax(g.kept[:, ::-1], axis=1)
+        at = np.minimum(at, last)
+        tokens[g.rows] = g.ids[r, at]
+        prob[g.rows] = g.probs[r, at]
+        kept[g.rows] = g.kept.sum(axis=1)
+        raw_kept = rows[g.rows[:, None], np.minimum(g.ids, rows.shape[1] - 1)]
+        raw_mass = np.exp(raw_kept.astype(np.float64) - log_norm[g.rows][:, None])
+        kept_mass[g.rows] = (raw_mass * g.kept).sum(axis=1)
+        for b in g.rows.tolist():
+            fallback[b] = g.reason
+    logprob = rows[np.arange(n), tokens].astype(np.float64) - log_norm
     return PickResult(tokens, kept, kept_mass, entropy, prob, logprob, fallback, seed)
 
 
 def final_distribution(
     chain: Chain,
-    logits: NDArray[np.floating] | Sequence[float] | Sequence[Sequence[float]],
+    logits: Logits,
     history: Sequence[Sequence[int]] | None = None,
 ) -> F64:
     """The distribution ``pick`` draws from: float64 ``[B, V]``, zero outside the kept set."""
     rows = as_batch(logits)
     histories = _histories(history, rows.shape)
     _check_token_ids(chain, rows.shape[1])
+    rows, groups, _, _ = _resolve(chain, rows, histories, threads=1)
     out = np.zeros(rows.shape, np.float64)
-    for b, (decision, _) in enumerate(_run_rows(chain, rows, histories, threads=1)):
-        out[b, decision.ids] = decision.probs
+    for g in groups:
+        alive = g.kept
+        r = np.broadcast_to(g.rows[:, None], g.ids.shape)
+        out[r[alive], g.ids[alive]] = g.probs[alive]
     return out
 
 
@@ -156,345 +154,137 @@ def as_batch(logits: NDArray[np.floating] | Sequence[float] | Sequence[Sequence[
     return np.ascontiguousarray(arr, dtype=np.float32)
 
 
-# --- per-row work --------------------------------------------------------------------------
+# --- deciding the rows -----------------------------------------------------------------------
 
 
-@dataclass(frozen=True)
-class _Diagnostics:
-    """Raw-model quantities of one row (softmax of the finite raw logits at T = 1)."""
-
-    raw: F32
-    log_norm: float  # log of the raw softmax normaliser, including the max shift
-    entropy: float
-
-    def logprob(self, token: int) -> float:
-        return float(self.raw[token]) - self.log_norm
-
-    def mass_of(self, ids: IntArray) -> float:
-        return float(np.exp(self.raw[ids].astype(np.float64) - self.log_norm).sum())
-
-
-def _diagnostics(raw: F32, top: float) -> _Diagnostics:
-    # One float32 exp pass with float64 totals: these numbers are reported, never compared
-    # against a threshold, so float32 terms (relative error ~1e-7) are accurate enough.
-    shifted = raw - np.float32(top)
-    e = np.exp(shifted)
-    z = float(e.sum(dtype=np.float64))
-    with np.errstate(invalid="ignore"):
-        s = float(np.dot(e, shifted))
-    if not math.isfinite(s):  # -inf entries give 0 * -inf; they carry no mass
-        s = float(np.dot(e, np.where(e > 0, shifted, np.float32(0))))
-    return _Diagnostics(raw, top + math.log(z), math.log(z) - s / z)
-
-
-def _run_rows(
+def _resolve(
     chain: Chain, rows: F32, histories: list[list[int]], threads: int | None
-) -> list[tuple[_Decision, _Diagnostics]]:
+) -> tuple[F32, list[_Group], F64, F64]:
+    """(cleaned rows, groups covering every row, raw log-normaliser, raw entropy)."""
+    top = rows.max(axis=1)
+    invalid = ~np.isfinite(top) & ~(top == -np.inf)  # NaN propagates through max; +inf is max
+    if invalid.any():
+        rows = rows.copy()
+        rows[invalid] = np.where(np.isfinite(rows[invalid]), rows[invalid], np.float32(-np.inf))
+        top = rows.max(axis=1)
+    if (top == -np.inf).any():
+        b = int(np.flatnonzero(top == -np.inf)[0])
+        raise InputError("no_finite", f"row {b} has no finite logit")
+    valid = np.flatnonzero(~invalid)
+    log_norm, entropy, narrowed = _first_pass(chain, rows, top, histories, valid, threads)
+    groups: list[_Group] = []
+    undecided: list[tuple[int, str]] = [(int(b), "non_finite") for b in np.flatnonzero(invalid)]
+    if valid.size:
+        decided = _finish_chain(chain, narrowed, [histories[b] for b in valid])
+        empty = np.count_nonzero(decided.w > -np.inf, axis=1) == 0
+        keep = ~empty
+        groups.append(_group(valid[keep], decided, keep, None))
+        undecided += [(int(b), "empty") for b in valid[empty]]
+    for reason in ("non_finite", "empty"):
+        picked = np.array([b for b, r in undecided if r == reason], dtype=np.intp)
+        if picked.size:
+            groups += _fall_back(chain.fallback, rows, histories, picked, reason)
+    return rows, groups, log_norm, entropy
+
+
+def _fall_back(
+    fallback: Chain | None, rows: F32, histories: list[list[int]], picked: IntArray, reason: str
+) -> list[_Group]:
+    groups = []
+    if fallback is not None:
+        narrowed = [narrow_row(fallback, rows[b], histories[b]) for b in picked]
+        decided = _finish_chain(fallback, narrowed, [histories[b] for b in picked])
+        ok = np.count_nonzero(decided.w > -np.inf, axis=1) > 0
+        if ok.any():
+            groups.append(_group(picked[ok], decided, ok, reason))
+        picked = picked[~ok]
+    if picked.size:  # nothing else decides it: the most probable raw token
+        best = np.argmax(rows[picked], axis=1)[:, None].astype(np.intp)
+        groups.append(_Group(picked, best, np.ones(best.shape), np.ones(best.shape, bool), reason))
+    return groups
+
+
+def _group(rows: IntArray, c: Candidates, select: NDArray[np.bool_], reason: str | None) -> _Group:
+    w = c.w[select]
+    return _Group(rows, c.ids[select], probabilities(w), w > -np.inf, reason)
+
+
+def _first_pass(
+    chain: Chain,
+    rows: F32,
+    top: F32,
+    histories: list[list[int]],
+    valid: IntArray,
+    threads: int | None,
+) -> tuple[F64, F64, list[tuple[IntArray, F64, int]]]:
+    """Raw diagnostics for every row and the narrowed candidates of the valid rows; the
+    vocabulary-sized passes of different rows run in parallel threads."""
     n = rows.shape[0]
+    log_norm = np.empty(n)
+    entropy = np.empty(n)
+    narrowed: dict[int, tuple[IntArray, F64, int]] = {}
+    is_valid = np.zeros(n, dtype=bool)
+    is_valid[valid] = True
+
+    def work(part: IntArray) -> None:
+        log_norm[part], entropy[part] = _raw_diagnostics(rows[part], top[part])
+        for b in part.tolist():
+            if is_valid[b]:
+                narrowed[b] = narrow_row(chain, rows[b], histories[b])
+
     workers = _thread_count(threads, rows.size, n)
+    parts = np.array_split(np.arange(n), workers)
     if workers == 1:
-        return [_decide_row(chain, rows[b], histories[b]) for b in range(n)]
-    # NumPy releases the GIL inside the vocabulary-sized passes, so rows overlap well.
-    chunks = [range(i, n, workers) for i in range(workers)]
-
-    def run(chunk: range) -> list[tuple[int, tuple[_Decision, _Diagnostics]]]:
-        return [(b, _decide_row(chain, rows[b], histories[b])) for b in chunk]
-
-    results: list[tuple[_Decision, _Diagnostics] | None] = [None] * n
-    for part in _pool(workers).map(run, chunks):
-        for b, value in part:
-            results[b] = value
-    return [r for r in results if r is not None]
-
-
-def _decide_row(chain: Chain, raw: F32, history: list[int]) -> tuple[_Decision, _Diagnostics]:
-    top = float(raw.max())
-    reason: str | None = None
-    if not math.isfinite(top):  # NaN propagates through max; +inf is the max
-        raw = np.where(np.isfinite(raw), raw, np.float32(-np.inf))
-        top = float(raw.max())
-        reason = "non_finite"
-        if top == -math.inf:
-            raise InputError("no_finite", "a row has no finite logit")
-    elif top == -math.inf:
-        raise InputError("no_finite", "a row has no finite logit")
-    diag = _diagnostics(raw, top)
-    if reason is None:
-        decision = _apply(chain, raw, history)
-        if decision is not None:
-            return decision, diag
-        reason = "empty"
-    fallback = chain.fallback
-    decision = _apply(fallback, raw, history) if fallback is not None else None
-    if decision is None:
-        decision = _greedy_raw(raw)
-    return _Decision(decision.ids, decision.probs, reason), diag
-
-
-def _greedy_raw(raw: F32) -> _Decision:
-    return _Decision(np.array([int(np.argmax(raw))], dtype=np.intp), np.ones(1), None)
-
-
-def _apply(chain: Chain, raw: F32, history: list[int]) -> _Decision | None:
-    """Run every stage; None when nothing survives."""
-    row = _Row(raw=raw, temp=1.0, edits={})
-    for stage in chain.stages:
-        _STAGES[stage.method](row, stage, history, chain.min_keep)
-        if row.cand is not None and row.cand.size == 0:
-            return None
-    if row.cand is None:
-        _materialise(row)
-    assert row.cand is not None and row.w is not None
-    if row.cand.size == 0:
-        return None
-    return _Decision(row.cand, _softmax(row.w), None)
-
-
-# --- stages ----------------------------------------------------------------------------------
-
-
-def _temperature(row: _Row, stage: Stage, history: list[int], min_keep: int) -> None:
-    t = stage.number
-    if row.cand is None:
-        row.temp *= t
-        row.edits = {i: v / t for i, v in row.edits.items()}
+        work(parts[0])
     else:
-        assert row.w is not None
-        row.w = row.w / t
+        list(_pool(workers).map(work, parts))
+    return log_norm, entropy, [narrowed[b] for b in valid.tolist()]
 
 
-def _edit(row: _Row, updates: dict[int, float]) -> None:
-    """Replace working logits of specific ids, given as functions of their current value."""
-    if row.cand is None:
-        row.edits.update(updates)
-        return
-    assert row.w is not None
-    ids = np.fromiter(updates, dtype=np.intp, count=len(updates))
-    at = np.searchsorted(row.cand, ids)
-    at_ok = at < row.cand.size
-    present = np.zeros(ids.size, dtype=bool)
-    present[at_ok] = row.cand[at[at_ok]] == ids[at_ok]
-    if present.any():
-        row.w = row.w.copy()
-        row.w[at[present]] = [updates[int(i)] for i in ids[present]]
-        alive = row.w > -np.inf
-        if not alive.all():
-            row.cand, row.w = row.cand[alive], row.w[alive]
+def _raw_diagnostics(rows: F32, top: F32) -> tuple[F64, F64]:
+    """(log normaliser, entropy) of each row's raw softmax.
+
+    One float32 exp pass per row, row by row so the working buffers stay in cache, with
+    float32 sums (pairwise or blocked, relative error near 1e-7): these numbers are reported,
+    never compared with a threshold, so float32 terms are accurate enough.
+    """
+    n, vocab = rows.shape
+    shifted = np.empty(vocab, np.float32)
+    e = np.empty(vocab, np.float32)
+    log_norm = np.empty(n)
+    entropy = np.empty(n)
+    for b in range(n):
+        np.subtract(rows[b], top[b], out=shifted)
+        np.exp(shifted, out=e)
+        z = float(e.sum())
+        with np.errstate(invalid="ignore"):
+            s = float(np.dot(e, shifted))
+        if not math.isfinite(s):  # -inf entries give 0 * -inf; they carry no mass
+            s = float(np.dot(e, np.where(e > 0, shifted, np.float32(0))))
+        log_norm[b] = float(top[b]) + math.log(z)
+        entropy[b] = math.log(z) - s / z
+    return log_norm, entropy
 
 
-def _current(row: _Row, token: int) -> float:
-    """The working logit of one token (``-inf`` when removed)."""
-    if row.cand is None:
-        if token in row.edits:
-            return row.edits[token]
-        return float(row.raw[token]) / row.temp
-    assert row.w is not None
-    at = int(np.searchsorted(row.cand, token))
-    if at < row.cand.size and int(row.cand[at]) == token:
-        return float(row.w[at])
-    return -math.inf
+def _finish_chain(
+    chain: Chain, narrowed: list[tuple[IntArray, F64, int]], histories: list[list[int]]
+) -> Candidates:
+    """Pad the narrowed rows into one batch and apply the remaining stages to all at once."""
+    (start,) = {index for _, _, index in narrowed}  # the same chain stops every row alike
+    width = max(1, max(ids.size for ids, _, _ in narrowed))
+    vocab_pad = np.iinfo(np.intp).max
+    ids = np.full((len(narrowed), width), vocab_pad, dtype=np.intp)
+    w = np.full((len(narrowed), width), -np.inf)
+    for b, (row_ids, row_w, _) in enumerate(narrowed):
+        ids[b, : row_ids.size] = row_ids
+        w[b, : row_w.size] = row_w
+    c = Candidates(ids, w)
+    for stage in chain.stages[start:]:
+        RULES[stage.method](c, stage, histories, chain.min_keep)
+    return c
 
 
-def _window(history: list[int], window: int | None) -> list[int]:
-    return history if window is None else history[-window:]
-
-
-def _repetition_penalty(row: _Row, stage: Stage, history: list[int], min_keep: int) -> None:
-    p = stage.param
-    assert isinstance(p, RepetitionPenalty)
-    updates = {}
-    for token in set(_window(history, p.window)):
-        v = _current(row, token)
-        updates[token] = v / p.factor if v > 0 else v * p.factor
-    if updates:
-        _edit(row, updates)
-
-
-def _occurrence_penalty(row: _Row, stage: Stage, history: list[int], min_keep: int) -> None:
-    p = stage.param
-    assert isinstance(p, OccurrencePenalty)
-    counts = Counter(_window(history, p.window))
-    updates = {t: _current(row, t) - p.per_use * c - p.present for t, c in counts.items()}
-    if updates:
-        _edit(row, updates)
-
-
-def _token_bias(row: _Row, stage: Stage, history: list[int], min_keep: int) -> None:
-    _edit(row, {int(t): _current(row, int(t)) + float(d) for t, d in stage.param})  # type: ignore[union-attr]
-
-
-def _ban(row: _Row, stage: Stage, history: list[int], min_keep: int) -> None:
-    _edit(row, {int(t): -math.inf for t in stage.param})  # type: ignore[union-attr]
-
-
-def _top_k(row: _Row, stage: Stage, history: list[int], min_keep: int) -> None:
-    _keep_top(row, max(int(stage.number), min_keep))
-
-
-def _greedy(row: _Row, stage: Stage, history: list[int], min_keep: int) -> None:
-    _keep_top(row, 1)  # greedy keeps exactly one, whatever min_keep says
-
-
-def _keep_top(row: _Row, m: int) -> None:
-    """Keep the ``m`` highest working logits, ties to the lower id."""
-    if row.cand is not None:
-        assert row.w is not None
-        keep = top_positions(row.w, m)
-        row.cand, row.w = row.cand[keep], row.w[keep]
-        return
-    # Dividing by a positive temperature keeps the raw order, so rank the raw row; each edited
-    # id can displace at most one raw candidate, so m + len(edits) raw candidates suffice.
-    raw_ids = top_positions(row.raw, m + len(row.edits))
-    ids = np.union1d(raw_ids, np.fromiter(row.edits, dtype=np.intp, count=len(row.edits)))
-    w = _working(row, ids)
-    keep = top_positions(w, m)
-    row.cand, row.w = ids[keep], w[keep]
-
-
-def _min_p(row: _Row, stage: Stage, history: list[int], min_keep: int) -> None:
-    ratio = stage.number
-    was_full = row.cand is None
-    if was_full:
-        _narrow_for_min_p(row, ratio)
-    assert row.w is not None
-    if row.w.size == 0:
-        return
-    # p_i >= ratio * p_max  <=>  exp(w_i - w_max) >= ratio (the normaliser cancels).
-    keep = np.flatnonzero(np.exp(row.w - row.w.max()) >= ratio)
-    if keep.size < min_keep and was_full:
-        # The rescue ranks every survivor, not just the narrowed candidates.
-        row.cand = row.w = None
-        _keep_top(row, min_keep)
-        return
-    _keep_positions(row, keep, min_keep)
-
-
-def _narrow_for_min_p(row: _Row, ratio: float) -> None:
-    """Cut a full row down to a candidate set that surely holds every min_p survivor."""
-    edited = np.fromiter(row.edits, dtype=np.intp, count=len(row.edits))
-    # The best unedited raw token is among the top 1 + len(edits) raw positions.
-    head = top_positions(row.raw, 1 + edited.size)
-    unedited = np.setdiff1d(head, edited)
-    w_max = max(
-        [float(row.raw[unedited].max()) / row.temp if unedited.size else -math.inf]
-        + [v for v in row.edits.values()]
-    )
-    if w_max == -math.inf:
-        row.cand, row.w = np.empty(0, np.intp), np.empty(0)
-        return
-    # Generous slack on the float32 comparison; the exact test runs in float64 afterwards.
-    floor = (w_max + math.log(ratio)) * row.temp
-    floor -= 1e-4 * (abs(floor) + 1.0)
-    ids = np.union1d(np.flatnonzero(row.raw >= np.float32(floor)), edited)
-    w = _working(row, ids)
-    alive = w > -np.inf
-    row.cand, row.w = ids[alive], w[alive]
-
-
-def _top_p(row: _Row, stage: Stage, history: list[int], min_keep: int) -> None:
-    if stage.number >= 1.0:
-        return  # the whole mass: every survivor, whatever rounding does to the running sum
-    _materialise(row)
-    assert row.w is not None
-    probs = _softmax(row.w)
-    keep = shortest_prefix(-probs, probs, stage.number)
-    _keep_positions(row, keep, min_keep)
-
-
-def _typical(row: _Row, stage: Stage, history: list[int], min_keep: int) -> None:
-    if stage.number >= 1.0:
-        return
-    _materialise(row)
-    assert row.w is not None
-    logp = _log_softmax(row.w)
-    probs = np.exp(logp)
-    h = float(-(probs * logp).sum())
-    keep = shortest_prefix(np.abs(-logp - h), probs, stage.number)
-    _keep_positions(row, keep, min_keep)
-
-
-def _epsilon(row: _Row, stage: Stage, history: list[int], min_keep: int) -> None:
-    _materialise(row)
-    assert row.w is not None
-    probs = _softmax(row.w)
-    _keep_where(row, probs >= stage.number, min_keep)
-
-
-def _eta(row: _Row, stage: Stage, history: list[int], min_keep: int) -> None:
-    _materialise(row)
-    assert row.w is not None
-    eps = stage.number
-    logp = _log_softmax(row.w)
-    probs = np.exp(logp)
-    h = float(-(probs * logp).sum())
-    eta = min(eps, math.sqrt(eps) * math.exp(-h))
-    _keep_where(row, probs >= eta, min_keep)
-
-
-def _keep_where(row: _Row, mask: NDArray[np.bool_], min_keep: int) -> None:
-    _keep_positions(row, np.flatnonzero(mask), min_keep)
-
-
-def _keep_positions(row: _Row, keep: IntArray, min_keep: int) -> None:
-    assert row.cand is not None and row.w is not None
-    if keep.size < min_keep:
-        keep = top_positions(row.w, min_keep)
-    row.cand, row.w = row.cand[keep], row.w[keep]
-
-
-_STAGES = {
-    "temperature": _temperature,
-    "repetition_penalty": _repetition_penalty,
-    "occurrence_penalty": _occurrence_penalty,
-    "token_bias": _token_bias,
-    "ban": _ban,
-    "top_k": _top_k,
-    "top_p": _top_p,
-    "typical": _typical,
-    "min_p": _min_p,
-    "epsilon": _epsilon,
-    "eta": _eta,
-    "greedy": _greedy,
-}
-
-
-# --- helpers -------------------------------------------------------------------------------
-
-
-def _working(row: _Row, ids: IntArray) -> F64:
-    """Float64 working logits of ``ids`` for a row that is still full."""
-    w = row.raw[ids].astype(np.float64) / row.temp
-    for at, token in enumerate(ids.tolist()):
-        if token in row.edits:
-            w[at] = row.edits[token]
-    return w
-
-
-def _materialise(row: _Row) -> None:
-    if row.cand is not None:
-        return
-    w = row.raw.astype(np.float64) / row.temp
-    for token, value in row.edits.items():
-        w[token] = value
-    alive = w > -np.inf
-    if alive.all():
-        row.cand, row.w = np.arange(w.size), w
-    else:
-        row.cand = np.flatnonzero(alive)
-        row.w = w[row.cand]
-    row.edits = {}
-
-
-def _log_softmax(w: F64) -> F64:
-    shifted = w - w.max()
-    result: F64 = shifted - math.log(float(np.exp(shifted).sum()))
-    return result
-
-
-def _softmax(w: F64) -> F64:
-    e = np.exp(w - w.max())
-    result: F64 = e / e.sum()
-    return result
+# --- checks and small helpers ----------------------------------------------------------------
 
 
 def _uniforms(seed: int, first_stream: int, count: int) -> F64:

@@ -37,7 +37,8 @@ class Candidates:
 def probabilities(w: F64) -> F64:
     """Row-wise softmax over the finite entries; rows with none give all zeros."""
     # Clamping the max makes an all -inf row give exp 0 instead of NaN.
-    e: F64 = np.exp(w - np.maximum(w.max(axis=1, keepdims=True), -1e300))
+    e: F64 = w - np.maximum(w.max(axis=1, keepdims=True), -1e300)
+    np.exp(e, out=e)
     total = e.sum(axis=1, keepdims=True)
     e /= np.maximum(total, 1e-300)
     return e
@@ -97,6 +98,23 @@ def _keep(c: Candidates, keep: BoolArray, min_keep: int) -> None:
         counts = np.full(c.w.shape[0], min_keep, dtype=np.intp)
         keep = np.where(short[:, None], _first_in_order(_by_logit(c), counts), keep)
     c.w = np.where(keep, c.w, -np.inf)
+
+
+def compact(c: Candidates) -> None:
+    """Squeeze out removed entries when they are most of the width, keeping ids ascending."""
+    alive = c.w > -np.inf
+    counts = alive.sum(axis=1)
+    width = max(1, int(counts.max()))
+    if width * 2 > c.w.shape[1]:
+        return
+    rows, cols = np.nonzero(alive)  # row-major: ascending columns within each row
+    starts = np.concatenate(([0], np.cumsum(counts)[:-1]))
+    slots = np.arange(rows.size) - np.repeat(starts, counts)
+    ids = np.full((c.w.shape[0], width), np.iinfo(np.intp).max, dtype=np.intp)
+    w = np.full((c.w.shape[0], width), -np.inf)
+    ids[rows, slots] = c.ids[rows, cols]
+    w[rows, slots] = c.w[rows, cols]
+    c.ids, c.w = ids, w
 
 
 # --- the rules -------------------------------------------------------------------------------

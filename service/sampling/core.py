@@ -18,8 +18,8 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import NDArray
 
-from service.sampling.batch import RULES, Candidates, probabilities
-from service.sampling.chain import Chain
+from service.sampling.batch import RULES, Candidates, compact, probabilities
+from service.sampling.chain import TRUNCATION_METHODS, Chain
 from service.sampling.full import narrow_row
 
 # Fresh seeds stay below 2**53 so that any JSON client can echo them back exactly.
@@ -100,16 +100,15 @@ def pick(
     for g in groups:
         r = np.arange(g.rows.size)
         cdf = np.cumsum(g.probs, axis=1)
-        at = (cdf <= (uniforms[g.rows] * cdf[:, -1])[:, None]).sum(axis=1)
+        targets = uniforms[g.rows] * cdf[:, -1]
+        at = np.array([np.searchsorted(cdf[i], targets[i], side="right") for i in r], dtype=np.intp)
         # Rounding can put u * total at the very top: take the last kept entry then.
         last = g.kept.shape[1] - 1 - np.argmax(g.kept[:, ::-1], axis=1)
         at = np.minimum(at, last)
         tokens[g.rows] = g.ids[r, at]
         prob[g.rows] = g.probs[r, at]
         kept[g.rows] = g.kept.sum(axis=1)
-        raw_kept = rows[g.rows[:, None], np.minimum(g.ids, rows.shape[1] - 1)]
-        raw_mass = np.exp(raw_kept.astype(np.float64) - log_norm[g.rows][:, None])
-        kept_mass[g.rows] = (raw_mass * g.kept).sum(axis=1)
+        kept_mass[g.rows] = _raw_mass(rows, g, log_norm)
         for b in g.rows.tolist():
             fallback[b] = g.reason
     logprob = rows[np.arange(n), tokens].astype(np.float64) - log_norm
@@ -204,6 +203,16 @@ def _fall_back(
     return groups
 
 
+def _raw_mass(rows: F32, g: _Group, log_norm: F64) -> F64:
+    """Raw model mass on each row's kept set."""
+    if g.ids.shape[1] == rows.shape[1] and g.kept.all():
+        return np.ones(g.rows.size)  # everything kept: the whole mass, by definition
+    raw_kept = rows[g.rows[:, None], np.minimum(g.ids, rows.shape[1] - 1)]
+    raw_mass = np.exp(raw_kept.astype(np.float64) - log_norm[g.rows][:, None])
+    result: F64 = (raw_mass * g.kept).sum(axis=1)
+    return result
+
+
 def _group(rows: IntArray, c: Candidates, select: NDArray[np.bool_], reason: str | None) -> _Group:
     w = c.w[select]
     return _Group(rows, c.ids[select], probabilities(w), w > -np.inf, reason)
@@ -271,16 +280,22 @@ def _finish_chain(
 ) -> Candidates:
     """Pad the narrowed rows into one batch and apply the remaining stages to all at once."""
     (start,) = {index for _, _, index in narrowed}  # the same chain stops every row alike
-    width = max(1, max(ids.size for ids, _, _ in narrowed))
-    vocab_pad = np.iinfo(np.intp).max
-    ids = np.full((len(narrowed), width), vocab_pad, dtype=np.intp)
-    w = np.full((len(narrowed), width), -np.inf)
-    for b, (row_ids, row_w, _) in enumerate(narrowed):
-        ids[b, : row_ids.size] = row_ids
-        w[b, : row_w.size] = row_w
+    sizes = {ids.size for ids, _, _ in narrowed}
+    if len(sizes) == 1 and 0 not in sizes:  # equal widths: no padding needed
+        ids = np.stack([row_ids for row_ids, _, _ in narrowed])
+        w = np.stack([row_w for _, row_w, _ in narrowed])
+    else:
+        width = max(1, *sizes)
+        ids = np.full((len(narrowed), width), np.iinfo(np.intp).max, dtype=np.intp)
+        w = np.full((len(narrowed), width), -np.inf)
+        for b, (row_ids, row_w, _) in enumerate(narrowed):
+            ids[b, : row_ids.size] = row_ids
+            w[b, : row_w.size] = row_w
     c = Candidates(ids, w)
     for stage in chain.stages[start:]:
         RULES[stage.method](c, stage, histories, chain.min_keep)
+        if stage.method in TRUNCATION_METHODS:
+            compact(c)
     return c
 
 

@@ -13,7 +13,7 @@ $(STAMP): pyproject.toml
 	touch $(STAMP)
 
 demo: $(STAMP)
-	$(BIN)/python -m service.sampling.demo
+	$(BIN)/python -m service.demo
 
 run: demo
 

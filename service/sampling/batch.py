@@ -26,6 +26,8 @@ BoolArray = NDArray[np.bool_]
 
 # Rows wider than this are ranked row by row with threshold selection instead of a full sort.
 _WIDE = 4096
+# Batches at most this wide are never compacted.
+_NARROW = 512
 
 
 @dataclass
@@ -61,9 +63,9 @@ def _first_in_order(key: F64, counts: IntArray) -> BoolArray:
             mask[b, top_positions(-key[b], int(counts[b]))] = True
         return mask
     order = np.argsort(key, axis=1, kind="stable")
+    # Counts beyond a row's survivors reach into removed entries, which stay removed.
     mask[np.arange(rows)[:, None], order] = np.arange(width) < counts[:, None]
-    result: BoolArray = mask & (key < np.inf)
-    return result
+    return mask
 
 
 def _prefix_mask(key: F64, mass: F64, target: float) -> BoolArray:
@@ -81,8 +83,7 @@ def _prefix_mask(key: F64, mass: F64, target: float) -> BoolArray:
     counts = (np.cumsum(mass[r, order], axis=1) < target).sum(axis=1) + 1
     mask = np.zeros(key.shape, dtype=bool)
     mask[r, order] = np.arange(width) < counts[:, None]
-    result: BoolArray = mask & (key < np.inf)
-    return result
+    return mask
 
 
 def _by_logit(c: Candidates) -> F64:
@@ -90,9 +91,13 @@ def _by_logit(c: Candidates) -> F64:
     return -c.w
 
 
-def _keep(c: Candidates, keep: BoolArray, min_keep: int) -> None:
+def _keep(c: Candidates, keep: BoolArray, min_keep: int, may_empty: bool = False) -> None:
     """Drop what ``keep`` leaves out; rows left with fewer than ``min_keep`` instead keep their
-    ``min_keep`` most probable survivors (ties to the lower id)."""
+    ``min_keep`` most probable survivors (ties to the lower id). Rules that always keep at
+    least one survivor (``may_empty`` False) skip the count when ``min_keep`` is 1."""
+    if min_keep == 1 and not may_empty:
+        c.w = np.where(keep, c.w, -np.inf)
+        return
     short = keep.sum(axis=1) < min_keep
     if short.any():
         counts = np.full(c.w.shape[0], min_keep, dtype=np.intp)
@@ -102,6 +107,8 @@ def _keep(c: Candidates, keep: BoolArray, min_keep: int) -> None:
 
 def compact(c: Candidates) -> None:
     """Squeeze out removed entries when they are most of the width, keeping ids ascending."""
+    if c.w.shape[1] <= _NARROW:
+        return  # squeezing a narrow batch costs more than it saves
     alive = c.w > -np.inf
     counts = alive.sum(axis=1)
     width = max(1, int(counts.max()))
@@ -215,7 +222,7 @@ def min_p(c: Candidates, stage: Stage, history: list[list[int]], min_keep: int) 
 
 
 def epsilon(c: Candidates, stage: Stage, history: list[list[int]], min_keep: int) -> None:
-    _keep(c, probabilities(c.w) >= stage.number, min_keep)
+    _keep(c, probabilities(c.w) >= stage.number, min_keep, may_empty=True)
 
 
 def eta(c: Candidates, stage: Stage, history: list[list[int]], min_keep: int) -> None:
@@ -223,7 +230,7 @@ def eta(c: Candidates, stage: Stage, history: list[list[int]], min_keep: int) ->
     logp = _log_probabilities(c.w)
     p = np.exp(logp)
     threshold = np.minimum(eps, math.sqrt(eps) * np.exp(-_entropy(p, logp)))
-    _keep(c, (p >= threshold) & (c.w > -np.inf), min_keep)
+    _keep(c, (p >= threshold) & (c.w > -np.inf), min_keep, may_empty=True)
 
 
 def _entropy(p: F64, logp: F64) -> F64:

@@ -8,6 +8,7 @@ fallback, then to greedy. Diagnostics describe the raw model: softmax of the fin
 
 from __future__ import annotations
 
+import itertools
 import math
 import os
 import secrets
@@ -24,6 +25,8 @@ from service.sampling.full import narrow_row
 
 # Fresh seeds stay below 2**53 so that any JSON client can echo them back exactly.
 _FRESH_SEED_BITS = 53
+# Block length for drawing from wide rows.
+_BLOCK = 256
 # Rows are shared between threads only when a batch is at least this large in total.
 _PARALLEL_MIN_ELEMENTS = 1 << 18
 
@@ -99,12 +102,11 @@ def pick(
     fallback: list[str | None] = [None] * n
     for g in groups:
         r = np.arange(g.rows.size)
-        cdf = np.cumsum(g.probs, axis=1)
-        targets = uniforms[g.rows] * cdf[:, -1]
-        at = np.array([np.searchsorted(cdf[i], targets[i], side="right") for i in r], dtype=np.intp)
-        # Rounding can put u * total at the very top: take the last kept entry then.
-        last = g.kept.shape[1] - 1 - np.argmax(g.kept[:, ::-1], axis=1)
-        at = np.minimum(at, last)
+        at = _inverse_cdf(g.probs, uniforms[g.rows])
+        if not g.kept[r, at].all():
+            # Rounding put u * total at the very top, past the last kept entry: take that one.
+            last = g.kept.shape[1] - 1 - np.argmax(g.kept[:, ::-1], axis=1)
+            at = np.where(g.kept[r, at], at, last)
         tokens[g.rows] = g.ids[r, at]
         prob[g.rows] = g.probs[r, at]
         kept[g.rows] = g.kept.sum(axis=1)
@@ -113,6 +115,30 @@ def pick(
             fallback[b] = g.reason
     logprob = rows[np.arange(n), tokens].astype(np.float64) - log_norm
     return PickResult(tokens, kept, kept_mass, entropy, prob, logprob, fallback, seed)
+
+
+def _inverse_cdf(probs: F64, uniforms: F64) -> IntArray:
+    """Per row, the first position whose cumulative probability exceeds u times the total."""
+    width = probs.shape[1]
+    if width <= _BLOCK * 4:
+        cdf = np.cumsum(probs, axis=1)
+        at = (cdf <= (uniforms * cdf[:, -1])[:, None]).sum(axis=1)
+        result: IntArray = np.minimum(at, width - 1)
+        return result
+    # Wide rows: a running sum over the whole row is slow, so find the block first from block
+    # totals, then the position inside that block.
+    out = np.empty(probs.shape[0], dtype=np.intp)
+    pad = (-width) % _BLOCK
+    for b in range(probs.shape[0]):
+        row = np.concatenate((probs[b], np.zeros(pad))) if pad else probs[b]
+        blocks = np.cumsum(row.reshape(-1, _BLOCK).sum(axis=1))
+        target = uniforms[b] * blocks[-1]
+        k = min(int(np.searchsorted(blocks, target, side="right")), blocks.size - 1)
+        inside = np.cumsum(row[k * _BLOCK : (k + 1) * _BLOCK])
+        before = blocks[k - 1] if k else 0.0
+        j = int(np.searchsorted(inside, target - before, side="right"))
+        out[b] = min(k * _BLOCK + min(j, _BLOCK - 1), width - 1)
+    return out
 
 
 def final_distribution(
@@ -214,8 +240,8 @@ def _raw_mass(rows: F32, g: _Group, log_norm: F64) -> F64:
 
 
 def _group(rows: IntArray, c: Candidates, select: NDArray[np.bool_], reason: str | None) -> _Group:
-    w = c.w[select]
-    return _Group(rows, c.ids[select], probabilities(w), w > -np.inf, reason)
+    ids, w = (c.ids, c.w) if select.all() else (c.ids[select], c.w[select])
+    return _Group(rows, ids, probabilities(w), w > -np.inf, reason)
 
 
 def _first_pass(
@@ -231,23 +257,24 @@ def _first_pass(
     n = rows.shape[0]
     log_norm = np.empty(n)
     entropy = np.empty(n)
-    narrowed: dict[int, tuple[IntArray, F64, int]] = {}
+    narrowed: list[tuple[IntArray, F64, int] | None] = [None] * n
     is_valid = np.zeros(n, dtype=bool)
     is_valid[valid] = True
 
-    def work(part: IntArray) -> None:
-        log_norm[part], entropy[part] = _raw_diagnostics(rows[part], top[part])
-        for b in part.tolist():
+    def work(bounds: tuple[int, int]) -> None:
+        lo, hi = bounds  # a slice, so the rows are viewed, not copied
+        log_norm[lo:hi], entropy[lo:hi] = _raw_diagnostics(rows[lo:hi], top[lo:hi])
+        for b in range(lo, hi):
             if is_valid[b]:
                 narrowed[b] = narrow_row(chain, rows[b], histories[b])
 
     workers = _thread_count(threads, rows.size, n)
-    parts = np.array_split(np.arange(n), workers)
     if workers == 1:
-        work(parts[0])
+        work((0, n))
     else:
-        list(_pool(workers).map(work, parts))
-    return log_norm, entropy, [narrowed[b] for b in valid.tolist()]
+        edges = np.linspace(0, n, workers + 1).astype(int).tolist()
+        list(_pool(workers).map(work, itertools.pairwise(edges)))
+    return log_norm, entropy, [r for r in narrowed if r is not None]
 
 
 def _raw_diagnostics(rows: F32, top: F32) -> tuple[F64, F64]:
@@ -281,7 +308,9 @@ def _finish_chain(
     """Pad the narrowed rows into one batch and apply the remaining stages to all at once."""
     (start,) = {index for _, _, index in narrowed}  # the same chain stops every row alike
     sizes = {ids.size for ids, _, _ in narrowed}
-    if len(sizes) == 1 and 0 not in sizes:  # equal widths: no padding needed
+    if len(narrowed) == 1 and 0 not in sizes:
+        ids, w = narrowed[0][0][None, :], narrowed[0][1][None, :]
+    elif len(sizes) == 1 and 0 not in sizes:  # equal widths: no padding needed
         ids = np.stack([row_ids for row_ids, _, _ in narrowed])
         w = np.stack([row_w for _, row_w, _ in narrowed])
     else:

@@ -18,8 +18,8 @@ demo: $(STAMP)
 run: demo
 
 lint: $(STAMP)
-	$(BIN)/ruff check .
-	$(BIN)/ruff format --check .
+	$(BIN)/ruff check service tests loadtest
+	$(BIN)/ruff format --check service tests loadtest
 	$(BIN)/mypy
 
 test: lint

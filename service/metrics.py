@@ -1,0 +1,125 @@
+"""Prometheus metrics (DESIGN.md section 5) and their exposition, correct with several workers.
+
+With several uvicorn workers, ``keepset serve`` points ``PROMETHEUS_MULTIPROC_DIR`` at a fresh
+folder before any worker starts; each worker then writes its samples there and ``/metrics``
+aggregates the folder (prometheus-client's multiprocess mode). That mode has limits we respect:
+no Info metrics and no callback gauges; gauges state how workers combine (``max`` here). Labels
+only ever carry configured names (clients, policies, arms, endpoints), never request text.
+"""
+
+from __future__ import annotations
+
+import os
+from collections.abc import Sequence
+
+from prometheus_client import (
+    CONTENT_TYPE_LATEST,
+    CollectorRegistry,
+    Counter,
+    Gauge,
+    Histogram,
+    generate_latest,
+)
+from prometheus_client import multiprocess as prom_multiprocess
+
+
+def fibonacci_buckets(limit: int) -> list[float]:
+    """1, 2, 3, 5, 8, ... up to the first value >= ``limit`` (the largest vocabulary)."""
+    out = [1, 2]
+    while out[-1] < limit:
+        out.append(out[-1] + out[-2])
+    return [float(v) for v in out]
+
+
+KEPT_BUCKETS = fibonacci_buckets(262_144)
+ENTROPY_BUCKETS = [0.01, 0.05, 0.1, 0.25, 0.5, 0.75, 1, 1.5, 2, 2.5, 3, 4, 5, 6, 8, 10, 12.5]
+DURATION_BUCKETS = [0.0005, 0.001, 0.002, 0.005, 0.01, 0.02, 0.05, 0.1, 0.2, 0.5, 1, 2, 5, 10, 30]
+
+KEPT_TOKENS = Histogram(
+    "keepset_kept_tokens",
+    "Kept-set size per sampled row (survivors after the whole chain).",
+    ["policy", "version", "role"],
+    buckets=KEPT_BUCKETS,
+)
+ENTROPY = Histogram(
+    "keepset_entropy_nats",
+    "Entropy of the raw model distribution per sampled row, in nats.",
+    ["policy", "version"],
+    buckets=ENTROPY_BUCKETS,
+)
+FALLBACKS = Counter(
+    "keepset_fallbacks",
+    "Rows decided by the policy's fallback, by reason (non_finite, empty).",
+    ["policy", "version", "reason"],
+)
+ROWS = Counter(
+    "keepset_rows",
+    "Rows sampled, by client, policy version and arm.",
+    ["client", "policy", "version", "arm"],
+)
+ADJUST_REFUSED = Counter(
+    "keepset_adjust_refused",
+    "Per-request adjustments refused or clamped, by client and field.",
+    ["client", "field"],
+)
+REQUEST_DURATION = Histogram(
+    "keepset_request_duration_seconds",
+    "Time from request to response, by endpoint and status code.",
+    ["endpoint", "code"],
+    buckets=DURATION_BUCKETS,
+)
+REGISTRY_RELOADS = Counter(
+    "keepset_registry_reloads",
+    "Registry reloads, by outcome (loaded, kept_last_good).",
+    ["outcome"],
+)
+COLLAPSE_ACTIVE = Gauge(
+    "keepset_collapse_active",
+    "1 while a policy version's recent kept sizes sit below its expect.kept_median_min.",
+    ["policy", "version"],
+    multiprocess_mode="max",
+)
+
+
+def observe_rows(
+    *,
+    client: str,
+    policy: str,
+    version: int,
+    arm: str,
+    role: str,
+    kept: Sequence[int],
+    entropy: Sequence[float],
+    fallback: Sequence[str | None],
+) -> None:
+    """Record one batch of sampled rows for a served or shadow policy version."""
+    v = str(version)
+    kept_hist = KEPT_TOKENS.labels(policy, v, role)
+    for k in kept:
+        kept_hist.observe(k)
+    if role != "served":
+        return
+    ROWS.labels(client, policy, v, arm).inc(len(kept))
+    entropy_hist = ENTROPY.labels(policy, v)
+    for h in entropy:
+        entropy_hist.observe(h)
+    for reason in fallback:
+        if reason is not None:
+            FALLBACKS.labels(policy, v, reason).inc()
+
+
+def exposition() -> tuple[bytes, str]:
+    """The /metrics body and content type, aggregated over workers in multiprocess mode."""
+    if os.environ.get("PROMETHEUS_MULTIPROC_DIR"):
+        registry = CollectorRegistry()
+        prom_multiprocess.MultiProcessCollector(registry)  # type: ignore[no-untyped-call]
+        return generate_latest(registry), CONTENT_TYPE_LATEST
+    from prometheus_client import REGISTRY
+
+    return generate_latest(REGISTRY), CONTENT_TYPE_LATEST
+
+
+def worker_exited(pid: int) -> None:
+    """Tell multiprocess mode that a worker is gone, so its live gauges stop counting."""
+    if os.environ.get("PROMETHEUS_MULTIPROC_DIR"):
+        prom_multiprocess.mark_process_dead(pid)  # type: ignore[no-untyped-call]

@@ -1,0 +1,73 @@
+"""Reading logits from ``.npy`` bytes without pickle and without copying the payload twice.
+
+Only the header is parsed by numpy's format helpers; the data is viewed with ``frombuffer``
+after checking that its length matches the header exactly. float32 and float16 are accepted,
+in either byte order; everything else is refused with a reason.
+"""
+
+from __future__ import annotations
+
+import io
+
+import numpy as np
+from numpy.lib import format as npy_format
+from numpy.typing import NDArray
+
+ACCEPTED = ("float32", "float16")
+
+
+class NpyError(ValueError):
+    """Bytes that are not a usable .npy array; ``kind`` is ``malformed`` or ``dtype``."""
+
+    def __init__(self, kind: str, message: str):
+        super().__init__(message)
+        self.kind = kind
+
+
+def read_npy(data: bytes) -> NDArray[np.floating]:
+    stream = io.BytesIO(data)
+    try:
+        version = npy_format.read_magic(stream)
+        if version == (1, 0):
+            shape, fortran, dtype = npy_format.read_array_header_1_0(stream)
+        elif version in ((2, 0), (3, 0)):
+            shape, fortran, dtype = npy_format.read_array_header_2_0(stream)
+        else:
+            raise NpyError("malformed", f"unsupported .npy format version {version}")
+    except NpyError:
+        raise
+    except Exception as exc:  # numpy raises ValueError/SyntaxError variants for bad headers
+        raise NpyError("malformed", f"not a .npy array: {exc}") from None
+    if dtype.hasobject or dtype.kind != "f" or dtype.name not in ACCEPTED:
+        raise NpyError("dtype", f"logits must be float32 or float16, got {dtype.str}")
+    if len(shape) not in (1, 2) or 0 in shape:
+        raise NpyError("malformed", f"logits must have shape [V] or [B, V], got {list(shape)}")
+    offset = stream.tell()
+    expected = int(np.prod(shape)) * dtype.itemsize
+    if len(data) - offset != expected:
+        raise NpyError(
+            "malformed",
+            f"the header says {expected} data bytes for shape {list(shape)}, "
+            f"the body has {len(data) - offset}",
+        )
+    array = np.frombuffer(data, dtype=dtype, count=int(np.prod(shape)), offset=offset)
+    array = array.reshape(shape, order="F" if fortran else "C")
+    return array.astype(np.float32, copy=False) if dtype.isnative else array.astype(np.float32)
+
+
+def npy_header_shape(data: bytes) -> tuple[int, ...]:
+    """The shape a .npy header announces, read before the data is touched."""
+    stream = io.BytesIO(data[:4096])
+    version = npy_format.read_magic(stream)
+    reader = (
+        npy_format.read_array_header_1_0 if version == (1, 0) else npy_format.read_array_header_2_0
+    )
+    shape, _, _ = reader(stream)
+    return tuple(int(s) for s in shape)
+
+
+def to_npy(array: NDArray[np.floating]) -> bytes:
+    """Serialise an array as .npy bytes (what the Python client sends)."""
+    buffer = io.BytesIO()
+    np.save(buffer, np.ascontiguousarray(array), allow_pickle=False)
+    return buffer.getvalue()

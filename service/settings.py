@@ -1,0 +1,44 @@
+"""Configuration: every ``KEEPSET_*`` environment variable, with the defaults a newcomer needs.
+
+Each setting is also a ``keepset serve`` flag (the CLI passes flags in as overrides). The
+defaults run the service on the embedded demo: the repository's ``policies/`` registry, the
+demo keys in ``deploy/demo-keys.yaml`` and the bundled model in ``service/model/bundled``.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+from pydantic import Field
+from pydantic_settings import BaseSettings, SettingsConfigDict
+
+_PACKAGE = Path(__file__).resolve().parent
+_CHECKOUT = _PACKAGE.parent
+
+
+def _default(relative: str) -> Path:
+    """A path inside the checkout when keepset runs from one, else relative to the cwd."""
+    inside = _CHECKOUT / relative
+    return inside if inside.exists() else Path(relative)
+
+
+class Settings(BaseSettings):
+    """Service configuration, read from ``KEEPSET_*`` variables."""
+
+    model_config = SettingsConfigDict(env_prefix="KEEPSET_", extra="ignore")
+
+    policies: Path = Field(default_factory=lambda: _default("policies"))
+    keys: Path = Field(default_factory=lambda: _default("deploy/demo-keys.yaml"))
+    model: Path = Field(default_factory=lambda: _PACKAGE / "model" / "bundled")
+    host: str = "127.0.0.1"
+    port: int = Field(default=8411, ge=1, le=65535)
+    workers: int = Field(default=1, ge=1, le=64)
+    max_body_bytes: int = Field(default=32 * 1024 * 1024, ge=1024)
+    max_rows: int = Field(default=64, ge=1)
+    max_vocab: int = Field(default=262_144, ge=2)
+    max_in_flight: int = Field(default=64, ge=1, description="requests in work before 429")
+    retry_after_seconds: int = Field(default=1, ge=1)
+    reload_poll_seconds: float = Field(default=2.0, ge=0.0, description="0 disables polling")
+    model_threads: int = Field(default=1, ge=1, description="onnxruntime intra-op threads")
+    sampling_threads: int = Field(default=1, ge=1, description="threads per batch in the sampler")
+    log_level: str = "info"

@@ -1,0 +1,138 @@
+"""Routes: which policy versions serve each client, how traffic splits between them, shadows.
+
+``routes.yaml`` maps each client to weighted arms and optional shadow versions. The arm for a
+request with a routing key comes from a stable hash of (client, key) (BLAKE2b, never Python's
+salted ``hash``), so the same key lands on the same arm on every replica and after restarts;
+a request without a key is assigned at random in proportion to the weights.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import random
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+from typing import Any
+
+from service.policy import check_name, format_ref, parse_ref
+
+Ref = tuple[str, int]
+
+
+class RoutesError(ValueError):
+    """routes.yaml as a whole cannot be used."""
+
+
+@dataclass(frozen=True)
+class Arm:
+    policy: Ref
+    weight: int
+    label: str | None = None
+
+    def public_label(self, index: int) -> str:
+        """What responses and metrics call this arm: its label, or its index."""
+        return self.label if self.label is not None else str(index)
+
+
+@dataclass(frozen=True)
+class Route:
+    client: str
+    arms: tuple[Arm, ...]
+    shadow: tuple[Ref, ...] = ()
+
+    @property
+    def total_weight(self) -> int:
+        return sum(a.weight for a in self.arms)
+
+
+def stable_point(client: str, routing_key: str, total: int) -> int:
+    """A point in [0, total) that depends only on (client, routing_key)."""
+    # Length-prefixed so ("ab", "c") and ("a", "bc") never collide.
+    payload = b"".join(
+        len(p).to_bytes(4, "big") + p for p in (client.encode(), routing_key.encode())
+    )
+    digest = hashlib.blake2b(payload, digest_size=8, person=b"keepset-arm").digest()
+    return int.from_bytes(digest, "big") % total
+
+
+def choose_arm(
+    client: str, routing_key: str | None, arms: Sequence[Arm], rng: random.Random
+) -> int:
+    """Index of the arm serving this request."""
+    total = sum(a.weight for a in arms)
+    point = (
+        stable_point(client, routing_key, total)
+        if routing_key is not None
+        else rng.randrange(total)
+    )
+    for index, arm in enumerate(arms):
+        if point < arm.weight:
+            return index
+        point -= arm.weight
+    return len(arms) - 1
+
+
+def parse_routes(data: Any, known: set[Ref]) -> tuple[dict[str, Route], list[Any]]:
+    """Validate parsed routes.yaml; each client with a problem is refused on its own."""
+    from service.registry import Refusal  # the registry owns the refusal type
+
+    if not isinstance(data, Mapping) or not isinstance(data.get("clients"), Mapping):
+        raise RoutesError("expected a mapping with a 'clients' mapping")
+    unknown_top = set(data) - {"clients"}
+    if unknown_top:
+        raise RoutesError(f"unknown top-level keys: {', '.join(sorted(map(str, unknown_top)))}")
+    routes: dict[str, Route] = {}
+    refused = []
+    for client, spec in data["clients"].items():
+        try:
+            routes[str(client)] = _route(str(client), spec, known)
+        except ValueError as exc:
+            refused.append(Refusal("routes.yaml", f"clients.{client}: {exc}"))
+    return routes, refused
+
+
+def _route(client: str, spec: Any, known: set[Ref]) -> Route:
+    check_name(client)
+    if not isinstance(spec, Mapping) or set(spec) - {"arms", "shadow"} or "arms" not in spec:
+        raise ValueError("expected {arms: [...], shadow: [...]} (shadow optional)")
+    arms_spec = spec["arms"]
+    if not isinstance(arms_spec, list) or not arms_spec:
+        raise ValueError("arms: expected a non-empty list")
+    arms = []
+    labels: set[str] = set()
+    for i, arm in enumerate(arms_spec):
+        if (
+            not isinstance(arm, Mapping)
+            or set(arm) - {"policy", "weight", "label"}
+            or "policy" not in arm
+        ):
+            raise ValueError(
+                f"arms[{i}]: expected {{policy: name@version, weight: n, label: text}}"
+            )
+        ref = _known_ref(arm["policy"], known, f"arms[{i}].policy")
+        weight = arm.get("weight", 1)
+        if isinstance(weight, bool) or not isinstance(weight, int) or weight < 1:
+            raise ValueError(f"arms[{i}].weight: expected a positive integer, got {weight!r}")
+        label = arm.get("label")
+        if label is not None:
+            if not isinstance(label, str) or not label or len(label) > 64:
+                raise ValueError(f"arms[{i}].label: expected text of 1 to 64 characters")
+            if label in labels:
+                raise ValueError(f"arms[{i}].label: {label!r} is used twice")
+            labels.add(label)
+        arms.append(Arm(ref, weight, label))
+    shadow_spec = spec.get("shadow", []) or []
+    if not isinstance(shadow_spec, list):
+        raise ValueError("shadow: expected a list of name@version")
+    shadow = tuple(_known_ref(s, known, f"shadow[{i}]") for i, s in enumerate(shadow_spec))
+    return Route(client, tuple(arms), shadow)
+
+
+def _known_ref(text: Any, known: set[Ref], where: str) -> Ref:
+    try:
+        ref = parse_ref(text)
+    except ValueError as exc:
+        raise ValueError(f"{where}: {exc}") from None
+    if ref not in known:
+        raise ValueError(f"{where}: {format_ref(*ref)} is not a loaded policy version")
+    return ref

@@ -1,0 +1,514 @@
+"""The HTTP layer: a thin FastAPI app over auth, routing, policies, the sampler and metrics.
+
+Each handler reads the request, asks the current registry snapshot who the client is routed
+to, runs the sampler off the event loop, records metrics and answers; everything else lives in
+its own module. The registry snapshot is swapped by one attribute assignment, so a request sees
+the old registry or the new one, never a mix.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import base64
+import binascii
+import contextlib
+import json
+import logging
+import random
+import signal
+import time
+import uuid
+from collections.abc import AsyncIterator, Awaitable, Callable
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+from fastapi import FastAPI, Request
+from fastapi.responses import JSONResponse
+from pydantic import BaseModel, ConfigDict, Field, StrictInt, ValidationError
+from starlette.background import BackgroundTask
+from starlette.concurrency import run_in_threadpool
+from starlette.responses import Response
+
+from service import metrics, problems
+from service.keys import Identity, KeyRing, load_keyring
+from service.npy import NpyError, read_npy
+from service.policy import AdjustError, apply_adjust
+from service.problems import Problem
+from service.registry import RegistrySnapshot, load_registry, reload_registry
+from service.routing import choose_arm
+from service.sampling import InputError, as_batch, pick
+from service.settings import Settings
+
+log = logging.getLogger("keepset")
+
+NPY_MEDIA = "application/x-npy"
+
+
+class PickBody(BaseModel):
+    """JSON body of ``POST /v1/pick``."""
+
+    model_config = ConfigDict(extra="forbid")
+
+    logits: list[float | None] | list[list[float | None]] | None = None
+    logits_npy: str | None = Field(default=None, description="base64 of .npy bytes")
+    history: list[list[StrictInt]] | None = None
+    seed: StrictInt | None = Field(default=None, ge=0, lt=2**64)
+    routing_key: str | None = Field(default=None, max_length=512)
+    adjust: dict[str, float] = {}
+
+
+@dataclass
+class Live:
+    """What the running app serves; ``snapshot`` is replaced whole on reload."""
+
+    settings: Settings
+    snapshot: RegistrySnapshot
+    keys: KeyRing
+    draining: bool = False
+    in_flight: int = 0
+    last_reload: dict[str, Any] = field(default_factory=dict)
+    rng: random.Random = field(default_factory=random.Random)
+
+
+def create_app(settings: Settings | None = None) -> FastAPI:
+    settings = settings or Settings()
+    snapshot = load_registry(settings.policies)
+    live = Live(settings=settings, snapshot=snapshot, keys=load_keyring(settings.keys))
+    if not snapshot.valid:
+        log.warning("registry loaded with problems: %s", snapshot.problem_lines())
+
+    @contextlib.asynccontextmanager
+    async def lifespan(app: FastAPI) -> AsyncIterator[None]:
+        loop = asyncio.get_running_loop()
+        with contextlib.suppress(NotImplementedError, RuntimeError, ValueError):
+            loop.add_signal_handler(signal.SIGHUP, lambda: _reload(live, "signal"))
+        poller = asyncio.create_task(_poll_registry(live))
+        yield
+        live.draining = True
+        poller.cancel()
+
+    app = FastAPI(
+        title="keepset",
+        summary="Decoding policies as a governed, observable service.",
+        version="0.1.0",
+        lifespan=lifespan,
+    )
+    app.state.live = live
+    problems.install(app)
+    _install_middleware(app, live)
+    _add_routes(app, live)
+    return app
+
+
+# --- middleware: limits, overload, timing ---------------------------------------------------
+
+
+def _install_middleware(app: FastAPI, live: Live) -> None:
+    @app.middleware("http")
+    async def guard(
+        request: Request, call_next: Callable[[Request], Awaitable[Response]]
+    ) -> Response:
+        started = time.perf_counter()
+        path = request.url.path
+        endpoint = _endpoint_label(request)
+        response: Response
+        if path.startswith("/v1/") and live.in_flight >= live.settings.max_in_flight:
+            retry = str(live.settings.retry_after_seconds)
+            response = problems.problem_response(
+                Problem(
+                    429,
+                    "overloaded",
+                    f"more than {live.settings.max_in_flight} requests in work; retry shortly",
+                    headers={"Retry-After": retry},
+                )
+            )
+        else:
+            length = request.headers.get("content-length")
+            if length and length.isdigit() and int(length) > live.settings.max_body_bytes:
+                response = problems.problem_response(_too_large_body(live))
+            else:
+                live.in_flight += 1
+                try:
+                    response = await call_next(request)
+                finally:
+                    live.in_flight -= 1
+        if endpoint is not None:
+            metrics.REQUEST_DURATION.labels(endpoint, str(response.status_code)).observe(
+                time.perf_counter() - started
+            )
+        return response
+
+
+def _endpoint_label(request: Request) -> str | None:
+    # Route templates, not raw paths: the label set stays bounded whatever clients send.
+    for route in request.app.router.routes:
+        match, _ = route.matches(request.scope)
+        if match.value == 2:  # Match.FULL
+            return str(getattr(route, "path", "other"))
+    return None
+
+
+def _too_large_body(live: Live) -> Problem:
+    return Problem(
+        413,
+        "body-too-large",
+        f"the body is over KEEPSET_MAX_BODY_BYTES={live.settings.max_body_bytes}",
+    )
+
+
+async def _read_body(request: Request, live: Live) -> bytes:
+    limit = live.settings.max_body_bytes
+    chunks: list[bytes] = []
+    size = 0
+    async for chunk in request.stream():
+        size += len(chunk)
+        if size > limit:
+            raise _too_large_body(live)
+        chunks.append(chunk)
+    return b"".join(chunks)
+
+
+# --- auth ---------------------------------------------------------------------------------------
+
+
+def _identity(request: Request, live: Live) -> Identity:
+    header = request.headers.get("authorization", "")
+    scheme, _, token = header.partition(" ")
+    if scheme.lower() != "bearer" or not token.strip():
+        raise Problem(
+            401,
+            "no-key",
+            "send the API key as 'Authorization: Bearer <key>'",
+            headers={"WWW-Authenticate": "Bearer"},
+        )
+    identity = live.keys.identify(token.strip())
+    if identity is None:
+        raise Problem(
+            401, "bad-key", "the API key is not known", headers={"WWW-Authenticate": "Bearer"}
+        )
+    return identity
+
+
+def _client(request: Request, live: Live) -> str:
+    identity = _identity(request, live)
+    if identity.role != "client":
+        raise Problem(403, "not-a-client", "admin keys cannot sample; use a client key")
+    return identity.name
+
+
+def _admin(request: Request, live: Live) -> str:
+    identity = _identity(request, live)
+    if identity.role != "admin":
+        raise Problem(403, "admin-only", "this endpoint needs an admin key")
+    return identity.name
+
+
+# --- the pick path --------------------------------------------------------------------------
+
+
+@dataclass
+class _PickInput:
+    logits: np.ndarray
+    history: list[list[int]] | None
+    seed: int | None
+    routing_key: str | None
+    adjust: dict[str, float]
+
+
+async def _pick_input(request: Request, live: Live) -> _PickInput:
+    media = request.headers.get("content-type", "").split(";")[0].strip().lower()
+    if media not in ("application/json", NPY_MEDIA):
+        raise Problem(
+            415,
+            "media-type",
+            f"send application/json or {NPY_MEDIA}, not {media or 'no Content-Type'}",
+        )
+    body = await _read_body(request, live)
+    if media == NPY_MEDIA:
+        return _npy_input(body, dict(request.query_params))
+    try:
+        data = json.loads(body)
+    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
+        raise Problem(400, "malformed-json", f"the body is not JSON: {exc}") from None
+    try:
+        parsed = PickBody.model_validate(data)
+    except ValidationError as exc:
+        raise Problem(400, "malformed", _validation_text(exc)) from None
+    if (parsed.logits is None) == (parsed.logits_npy is None):
+        raise Problem(400, "malformed", "send exactly one of 'logits' and 'logits_npy'")
+    if parsed.logits_npy is not None:
+        try:
+            raw = base64.b64decode(parsed.logits_npy, validate=True)
+        except (binascii.Error, ValueError):
+            raise Problem(400, "malformed", "logits_npy is not valid base64") from None
+        logits = _npy(raw)
+    else:
+        logits = _json_logits(parsed.logits)
+    return _PickInput(logits, parsed.history, parsed.seed, parsed.routing_key, parsed.adjust)
+
+
+def _validation_text(exc: ValidationError) -> str:
+    return "; ".join(
+        f"{'.'.join(str(p) for p in e['loc']) or 'body'}: {e['msg']}" for e in exc.errors()[:5]
+    )
+
+
+def _json_logits(values: Any) -> np.ndarray:
+    # JSON has no NaN or infinity; null stands for a missing (invalid) entry, like NaN.
+    try:
+        return as_batch(np.array(values, dtype=np.float32))
+    except (ValueError, TypeError):
+        raise Problem(
+            400, "malformed", "logits must be a list of numbers or of equal-length rows"
+        ) from None
+
+
+def _npy(data: bytes) -> np.ndarray:
+    try:
+        return read_npy(data)
+    except NpyError as exc:
+        status = 415 if exc.kind == "dtype" else 400
+        raise Problem(status, f"npy-{exc.kind}", str(exc)) from None
+
+
+def _npy_input(body: bytes, query: dict[str, str]) -> _PickInput:
+    logits = _npy(body)
+    seed = query.pop("seed", None)
+    routing_key = query.pop("routing_key", None)
+    history_text = query.pop("history", None)
+    try:
+        seed_value = int(seed) if seed is not None else None
+        history = None
+        if history_text is not None:
+            history = [
+                [int(t) for t in row.split(",") if t.strip()] for row in history_text.split(";")
+            ]
+        adjust = {k: float(v) for k, v in query.items()}
+    except ValueError as exc:
+        raise Problem(400, "malformed-query", f"bad query parameter: {exc}") from None
+    return _PickInput(logits, history, seed_value, routing_key, adjust)
+
+
+def _check_limits(logits: np.ndarray, live: Live) -> np.ndarray:
+    rows = as_batch(logits) if logits.ndim != 2 else logits
+    b, v = rows.shape
+    if b > live.settings.max_rows:
+        raise Problem(
+            413, "too-many-rows", f"{b} rows is over KEEPSET_MAX_ROWS={live.settings.max_rows}"
+        )
+    if v > live.settings.max_vocab:
+        raise Problem(
+            413,
+            "vocab-too-large",
+            f"vocabulary {v} is over KEEPSET_MAX_VOCAB={live.settings.max_vocab}",
+        )
+    return rows
+
+
+_INPUT_STATUS = {
+    "shape": 400,
+    "history": 400,
+    "seed": 400,
+    "dtype": 415,
+    "no_finite": 422,
+    "token_range": 422,
+}
+
+
+def _add_routes(app: FastAPI, live: Live) -> None:
+    @app.post("/v1/pick", summary="Logits in, tokens and per-row diagnostics out")
+    async def pick_tokens(request: Request) -> Response:
+        client = _client(request, live)
+        snapshot = live.snapshot  # one registry for the whole request
+        route = snapshot.route_for(client)
+        if route is None:
+            raise Problem(403, "unknown-client", f"client {client!r} has no route in routes.yaml")
+        data = await _pick_input(request, live)
+        rows = _check_limits(data.logits, live)
+        arm_index = choose_arm(client, data.routing_key, route.arms, live.rng)
+        arm = route.arms[arm_index]
+        policy = snapshot.policy(arm.policy)
+        chain = snapshot.chain(arm.policy)
+        clamped: list[str] = []
+        if data.adjust:
+            try:
+                chain, clamped = apply_adjust(policy, data.adjust, chain)
+            except AdjustError as exc:
+                metrics.ADJUST_REFUSED.labels(client, exc.metric_field).inc()
+                raise Problem(
+                    422, f"adjust-{exc.reason.replace('_', '-')}", str(exc), field=exc.field
+                ) from None
+            for name in clamped:
+                metrics.ADJUST_REFUSED.labels(client, name).inc()
+        try:
+            out = await run_in_threadpool(
+                pick, chain, rows, data.seed, data.history, threads=live.settings.sampling_threads
+            )
+        except InputError as exc:
+            raise Problem(
+                _INPUT_STATUS.get(exc.reason, 400),
+                f"input-{exc.reason.replace('_', '-')}",
+                str(exc),
+            ) from None
+        label = arm.public_label(arm_index)
+        metrics.observe_rows(
+            client=client,
+            policy=policy.name,
+            version=policy.version,
+            arm=label,
+            role="served",
+            kept=out.kept.tolist(),
+            entropy=out.entropy.tolist(),
+            fallback=out.fallback,
+        )
+        body: dict[str, Any] = {
+            "request_id": uuid.uuid4().hex,
+            "client": client,
+            "policy": policy.name,
+            "version": policy.version,
+            "arm": label,
+            "seed": out.seed,
+            "tokens": out.tokens.tolist(),
+            "rows": [
+                {
+                    "token": int(out.tokens[b]),
+                    "prob": float(out.prob[b]),
+                    "logprob": float(out.logprob[b]),
+                    "entropy": float(out.entropy[b]),
+                    "kept": int(out.kept[b]),
+                    "kept_mass": float(out.kept_mass[b]),
+                    "fallback": out.fallback[b],
+                }
+                for b in range(out.tokens.size)
+            ],
+        }
+        if clamped:
+            body["clamped"] = clamped
+        shadow = (
+            BackgroundTask(_run_shadows, snapshot, route.shadow, rows, data, out.seed)
+            if route.shadow
+            else None
+        )
+        return JSONResponse(body, background=shadow)
+
+    @app.get("/v1/policies", summary="Every published policy version")
+    async def list_policies(request: Request) -> dict[str, Any]:
+        _identity(request, live)
+        snapshot = live.snapshot
+        return {"policies": [snapshot.describe(p) for p in snapshot.all_policies()]}
+
+    @app.get("/v1/policies/{name}", summary="The versions of one policy")
+    async def policy_versions(name: str, request: Request) -> dict[str, Any]:
+        _identity(request, live)
+        versions = live.snapshot.versions_of(name)
+        if not versions:
+            raise Problem(404, "unknown-policy", f"no policy named {name!r}")
+        return {"name": name, "versions": [live.snapshot.describe(p) for p in versions]}
+
+    @app.get("/v1/policies/{name}/{version}", summary="One policy version in full")
+    async def policy_version(name: str, version: int, request: Request) -> dict[str, Any]:
+        _identity(request, live)
+        policy = live.snapshot.find(name, version)
+        if policy is None:
+            raise Problem(404, "unknown-policy", f"no published version {name}@{version}")
+        return live.snapshot.describe(policy, full=True)
+
+    @app.get("/v1/routes", summary="Routes and arms (admin)")
+    async def routes(request: Request) -> dict[str, Any]:
+        _admin(request, live)
+        return live.snapshot.describe_routes()
+
+    @app.post("/v1/registry/reload", summary="Reload the registry (admin)")
+    async def reload(request: Request) -> JSONResponse:
+        _admin(request, live)
+        report = _reload(live, "admin")
+        return JSONResponse(report, status_code=200 if report["outcome"] == "loaded" else 422)
+
+    @app.get("/metrics", summary="Prometheus exposition")
+    async def scrape() -> Response:
+        payload, content_type = metrics.exposition()
+        return Response(payload, media_type=content_type)
+
+    @app.get("/healthz", summary="Liveness")
+    async def healthz() -> dict[str, str]:
+        return {"status": "ok"}
+
+    @app.get("/readyz", summary="Readiness: registry loaded, not draining")
+    async def readyz() -> JSONResponse:
+        reasons = []
+        if live.draining:
+            reasons.append("draining")
+        if not live.snapshot.policy_count():
+            reasons.append("no policies loaded")
+        if reasons:
+            return JSONResponse(
+                {
+                    "type": "urn:keepset:problem:not-ready",
+                    "title": "Not ready",
+                    "status": 503,
+                    "detail": "; ".join(reasons),
+                },
+                status_code=503,
+                media_type=problems.MEDIA_TYPE,
+            )
+        return JSONResponse({"status": "ready", "policies": live.snapshot.policy_count()})
+
+
+def _run_shadows(
+    snapshot: RegistrySnapshot,
+    shadows: tuple[tuple[str, int], ...],
+    rows: np.ndarray,
+    data: _PickInput,
+    seed: int,
+) -> None:
+    """Evaluate shadow policies on the same logits: metrics only, never returned."""
+    for ref in shadows:
+        try:
+            out = pick(snapshot.chain(ref), rows, seed, data.history)
+        except InputError:
+            continue  # the shadow cannot take these logits; the served answer stands
+        metrics.observe_rows(
+            client="",
+            policy=ref[0],
+            version=ref[1],
+            arm="",
+            role="shadow",
+            kept=out.kept.tolist(),
+            entropy=[],
+            fallback=[],
+        )
+
+
+def _reload(live: Live, trigger: str) -> dict[str, Any]:
+    snapshot, report = reload_registry(live.snapshot, live.settings.policies)
+    live.snapshot = snapshot
+    outcome = "loaded" if report.ok else "kept_last_good"
+    metrics.REGISTRY_RELOADS.labels(outcome).inc()
+    result = {"outcome": outcome, "trigger": trigger, **report.as_dict()}
+    live.last_reload = result
+    if report.ok:
+        log.info("registry reloaded (%s): %d files", trigger, len(report.loaded))
+    else:
+        log.warning(
+            "registry reload refused (%s); keeping the last good: %s", trigger, report.refused
+        )
+    return result
+
+
+async def _poll_registry(live: Live) -> None:
+    interval = live.settings.reload_poll_seconds
+    if interval <= 0:
+        return
+    seen = live.snapshot.fingerprint
+    while True:
+        await asyncio.sleep(interval)
+        try:
+            current = await run_in_threadpool(
+                RegistrySnapshot.fingerprint_of, live.settings.policies
+            )
+        except OSError:
+            continue
+        if current != seen:
+            seen = current
+            _reload(live, "file-change")

@@ -1,0 +1,100 @@
+"""Shared fixtures: a registry copy per test, the demo keys, an in-process app and a real
+``keepset serve`` on 127.0.0.1."""
+
+from __future__ import annotations
+
+import os
+import shutil
+import socket
+import subprocess
+import sys
+import time
+from collections.abc import Iterator
+from pathlib import Path
+
+import httpx
+import pytest
+
+ROOT = Path(__file__).resolve().parents[1]
+DEMO_KEYS = {
+    "prompt-book-app": "demo-prompt-book-app-key",
+    "usher-desk": "demo-usher-desk-key",
+    "surtitle-booth": "demo-surtitle-booth-key",
+    "programme-desk": "demo-programme-desk-key",
+    "stage-manager": "demo-stage-manager-key",
+}
+
+
+def auth(who: str) -> dict[str, str]:
+    return {"Authorization": f"Bearer {DEMO_KEYS[who]}"}
+
+
+@pytest.fixture
+def registry(tmp_path: Path) -> Path:
+    """A private copy of the demo registry that a test may change."""
+    target = tmp_path / "policies"
+    shutil.copytree(ROOT / "policies", target)
+    return target
+
+
+def free_port() -> int:
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return int(s.getsockname()[1])
+
+
+class Server:
+    def __init__(self, base_url: str, process: subprocess.Popen[bytes], policies: Path):
+        self.base_url = base_url
+        self.process = process
+        self.policies = policies
+
+
+def start_server(policies: Path, workers: int = 2, **env: str) -> Server:
+    port = free_port()
+    environment = {
+        **os.environ,
+        "KEEPSET_POLICIES": str(policies),
+        "KEEPSET_KEYS": str(ROOT / "deploy" / "demo-keys.yaml"),
+        "KEEPSET_PORT": str(port),
+        "KEEPSET_HOST": "127.0.0.1",
+        "KEEPSET_WORKERS": str(workers),
+        "KEEPSET_LOG_LEVEL": "warning",
+        **env,
+    }
+    process = subprocess.Popen(
+        [sys.executable, "-m", "service.cli", "serve"],
+        env=environment,
+        stdout=subprocess.DEVNULL,
+        stderr=subprocess.PIPE,
+    )
+    base = f"http://127.0.0.1:{port}"
+    deadline = time.monotonic() + 30
+    while time.monotonic() < deadline:
+        if process.poll() is not None:
+            raise RuntimeError(process.stderr.read().decode() if process.stderr else "exited")
+        try:
+            if httpx.get(f"{base}/readyz", timeout=1).status_code == 200:
+                return Server(base, process, policies)
+        except httpx.HTTPError:
+            pass
+        time.sleep(0.2)
+    process.kill()
+    raise RuntimeError("keepset serve did not become ready within 30 s")
+
+
+def stop_server(server: Server) -> None:
+    server.process.terminate()
+    try:
+        server.process.wait(timeout=15)
+    except subprocess.TimeoutExpired:
+        server.process.kill()
+        server.process.wait()
+
+
+@pytest.fixture
+def server(registry: Path) -> Iterator[Server]:
+    """A real keepset serve with two workers on loopback, on a private registry copy."""
+    running = start_server(registry, workers=2, KEEPSET_RELOAD_POLL_SECONDS="0.5")
+    yield running
+    stop_server(running)

@@ -18,11 +18,12 @@ import random
 import signal
 import time
 import uuid
-from collections.abc import AsyncIterator, Awaitable, Callable
+from collections.abc import AsyncIterator
 from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
+import orjson
 from fastapi import FastAPI, Request
 from fastapi.responses import JSONResponse
 from pydantic import BaseModel, ConfigDict, Field, StrictInt, ValidationError
@@ -43,6 +44,8 @@ from service.settings import Settings
 log = logging.getLogger("keepset")
 
 NPY_MEDIA = "application/x-npy"
+# Picks up to this many logits run on the event loop (a few ms at most); larger ones in a thread.
+_INLINE_ELEMENTS = 1 << 20
 
 
 class PickBody(BaseModel):
@@ -50,7 +53,9 @@ class PickBody(BaseModel):
 
     model_config = ConfigDict(extra="forbid")
 
-    logits: list[float | None] | list[list[float | None]] | None = None
+    # Checked by numpy's conversion, not field by field: per-number validation of a 128k row
+    # would cost more than the sampling.
+    logits: Any = None
     logits_npy: str | None = Field(default=None, description="base64 of .npy bytes")
     history: list[list[StrictInt]] | None = None
     seed: StrictInt | None = Field(default=None, ge=0, lt=2**64)
@@ -105,48 +110,78 @@ def create_app(settings: Settings | None = None) -> FastAPI:
 
 
 def _install_middleware(app: FastAPI, live: Live) -> None:
-    @app.middleware("http")
-    async def guard(
-        request: Request, call_next: Callable[[Request], Awaitable[Response]]
-    ) -> Response:
+    # A plain ASGI middleware: the decorator form streams every body through extra tasks.
+    app.add_middleware(_Guard, live=live)
+
+
+_EXACT_ENDPOINTS = {
+    "/v1/pick",
+    "/v1/continue",
+    "/v1/policies",
+    "/v1/routes",
+    "/v1/registry/reload",
+    "/metrics",
+    "/healthz",
+    "/readyz",
+}
+
+
+def _endpoint_label(path: str) -> str:
+    """Route templates, not raw paths: the label set stays bounded whatever clients send."""
+    if path in _EXACT_ENDPOINTS:
+        return path
+    if path.startswith("/v1/policies/"):
+        depth = path.count("/", len("/v1/policies/"))
+        return "/v1/policies/{name}" if depth == 0 else "/v1/policies/{name}/{version}"
+    return "other"
+
+
+class _Guard:
+    """Overload (429), declared body size (413) and request timing, before any handler runs."""
+
+    def __init__(self, app: Any, live: Live):
+        self.app = app
+        self.live = live
+
+    async def __call__(self, scope: Any, receive: Any, send: Any) -> None:
+        if scope["type"] != "http":
+            await self.app(scope, receive, send)
+            return
+        live = self.live
         started = time.perf_counter()
-        path = request.url.path
-        endpoint = _endpoint_label(request)
-        response: Response
+        path: str = scope["path"]
+        status = [500]
+
+        async def send_and_note(message: Any) -> None:
+            if message["type"] == "http.response.start":
+                status[0] = message["status"]
+            await send(message)
+
+        problem: Problem | None = None
         if path.startswith("/v1/") and live.in_flight >= live.settings.max_in_flight:
-            retry = str(live.settings.retry_after_seconds)
-            response = problems.problem_response(
-                Problem(
-                    429,
-                    "overloaded",
-                    f"more than {live.settings.max_in_flight} requests in work; retry shortly",
-                    headers={"Retry-After": retry},
-                )
+            problem = Problem(
+                429,
+                "overloaded",
+                f"more than {live.settings.max_in_flight} requests in work; retry shortly",
+                headers={"Retry-After": str(live.settings.retry_after_seconds)},
             )
         else:
-            length = request.headers.get("content-length")
-            if length and length.isdigit() and int(length) > live.settings.max_body_bytes:
-                response = problems.problem_response(_too_large_body(live))
-            else:
-                live.in_flight += 1
-                try:
-                    response = await call_next(request)
-                finally:
-                    live.in_flight -= 1
-        if endpoint is not None:
-            metrics.REQUEST_DURATION.labels(endpoint, str(response.status_code)).observe(
-                time.perf_counter() - started
-            )
-        return response
-
-
-def _endpoint_label(request: Request) -> str | None:
-    # Route templates, not raw paths: the label set stays bounded whatever clients send.
-    for route in request.app.router.routes:
-        match, _ = route.matches(request.scope)
-        if match.value == 2:  # Match.FULL
-            return str(getattr(route, "path", "other"))
-    return None
+            for name, value in scope.get("headers", ()):
+                if name == b"content-length" and value.isdigit():
+                    if int(value) > live.settings.max_body_bytes:
+                        problem = _too_large_body(live)
+                    break
+        if problem is not None:
+            await problems.problem_response(problem)(scope, receive, send_and_note)
+        else:
+            live.in_flight += 1
+            try:
+                await self.app(scope, receive, send_and_note)
+            finally:
+                live.in_flight -= 1
+        metrics.REQUEST_DURATION.labels(_endpoint_label(path), str(status[0])).observe(
+            time.perf_counter() - started
+        )
 
 
 def _too_large_body(live: Live) -> Problem:
@@ -228,9 +263,14 @@ async def _pick_input(request: Request, live: Live) -> _PickInput:
     if media == NPY_MEDIA:
         return _npy_input(body, dict(request.query_params))
     try:
-        data = json.loads(body)
-    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
-        raise Problem(400, "malformed-json", f"the body is not JSON: {exc}") from None
+        data = orjson.loads(body)
+    except orjson.JSONDecodeError:
+        # orjson is strict JSON; the standard parser also takes NaN and Infinity, which many
+        # JSON encoders emit for float rows.
+        try:
+            data = json.loads(body)
+        except (json.JSONDecodeError, UnicodeDecodeError) as exc:
+            raise Problem(400, "malformed-json", f"the body is not JSON: {exc}") from None
     try:
         parsed = PickBody.model_validate(data)
     except ValidationError as exc:
@@ -342,9 +382,12 @@ def _add_routes(app: FastAPI, live: Live) -> None:
             for name in clamped:
                 metrics.ADJUST_REFUSED.labels(client, name).inc()
         try:
-            out = await run_in_threadpool(
-                pick, chain, rows, data.seed, data.history, threads=live.settings.sampling_threads
-            )
+            args = (chain, rows, data.seed, data.history)
+            threads = live.settings.sampling_threads
+            if rows.size <= _INLINE_ELEMENTS:  # a thread hand-off would cost more than it frees
+                out = pick(*args, threads=threads)
+            else:
+                out = await run_in_threadpool(pick, *args, threads=threads)
         except InputError as exc:
             raise Problem(
                 _INPUT_STATUS.get(exc.reason, 400),

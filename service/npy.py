@@ -8,6 +8,7 @@ in either byte order; everything else is refused with a reason.
 from __future__ import annotations
 
 import io
+import re
 
 import numpy as np
 from numpy.lib import format as npy_format
@@ -24,7 +25,30 @@ class NpyError(ValueError):
         self.kind = kind
 
 
+# The header numpy itself writes: {'descr': '<f4', 'fortran_order': False, 'shape': (2, 5), }
+_HEADER = re.compile(
+    rb"\{'descr': '(?P<descr>[<>|=][a-z][0-9]+)', 'fortran_order': (?P<fortran>True|False), "
+    rb"'shape': \((?P<shape>[0-9, ]*)\), \}"
+)
+
+
+def _fast_header(data: bytes) -> tuple[tuple[int, ...], bool, np.dtype[np.generic], int] | None:
+    """Parse a version 1.0 header of numpy's own layout without ast; None if it is any other."""
+    if len(data) < 10 or data[:8] != b"\x93NUMPY\x01\x00":
+        return None
+    length = int.from_bytes(data[8:10], "little")
+    match = _HEADER.match(data, 10, 10 + length)
+    if match is None:
+        return None
+    shape = tuple(int(p) for p in match["shape"].replace(b" ", b"").split(b",") if p)
+    return shape, match["fortran"] == b"True", np.dtype(match["descr"].decode()), 10 + length
+
+
 def read_npy(data: bytes) -> NDArray[np.floating]:
+    fast = _fast_header(data)
+    if fast is not None:
+        shape, fortran, dtype, offset = fast
+        return _array(data, shape, fortran, dtype, offset)
     stream = io.BytesIO(data)
     try:
         version = npy_format.read_magic(stream)
@@ -38,11 +62,16 @@ def read_npy(data: bytes) -> NDArray[np.floating]:
         raise
     except Exception as exc:  # numpy raises ValueError/SyntaxError variants for bad headers
         raise NpyError("malformed", f"not a .npy array: {exc}") from None
+    return _array(data, shape, fortran, dtype, stream.tell())
+
+
+def _array(
+    data: bytes, shape: tuple[int, ...], fortran: bool, dtype: np.dtype[np.generic], offset: int
+) -> NDArray[np.floating]:
     if dtype.hasobject or dtype.kind != "f" or dtype.name not in ACCEPTED:
         raise NpyError("dtype", f"logits must be float32 or float16, got {dtype.str}")
     if len(shape) not in (1, 2) or 0 in shape:
         raise NpyError("malformed", f"logits must have shape [V] or [B, V], got {list(shape)}")
-    offset = stream.tell()
     expected = int(np.prod(shape)) * dtype.itemsize
     if len(data) - offset != expected:
         raise NpyError(

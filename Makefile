@@ -15,7 +15,8 @@ $(STAMP): pyproject.toml
 demo: $(STAMP)
 	$(BIN)/python -m service.demo
 
-run: demo
+run: $(STAMP)
+	$(BIN)/keepset serve
 
 lint: $(STAMP)
 	$(BIN)/ruff check service tests loadtest
@@ -27,6 +28,7 @@ test: lint
 
 bench: $(STAMP)
 	$(BIN)/python loadtest/bench_sampling.py
+	$(BIN)/python loadtest/bench_http.py
 
 clean:
 	rm -rf $(VENV) .pytest_cache .mypy_cache .ruff_cache .hypothesis

@@ -203,3 +203,20 @@ def test_metrics_names_follow_the_design(server: Server) -> None:
         "keepset_request_duration_seconds_bucket",
     ):
         assert re.search(rf"^{name}\{{", text, re.M), name
+
+
+def test_async_client(server: Server) -> None:
+    import asyncio
+
+    from service.client import AsyncClient
+
+    async def go() -> list[int]:
+        async with AsyncClient(server.base_url, key="demo-usher-desk-key") as client:
+            replies = await asyncio.gather(
+                *(client.pick(np.zeros((1, 50), np.float32), seed=s) for s in range(8))
+            )
+        return [r.tokens[0] for r in replies]
+
+    tokens = asyncio.run(go())
+    # All-equal logits under box-office (top_k 20): tokens come from the 20 lowest ids.
+    assert len(tokens) == 8 and all(0 <= t < 20 for t in tokens)

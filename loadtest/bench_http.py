@@ -178,6 +178,13 @@ def in_process_ms(logits: np.ndarray) -> float:
     return float(np.median(times) * 1e3)
 
 
+def row(vocab: int, workers: int, name: str, lat: dict[str, float], rps: float) -> str:
+    return (
+        f"{vocab:>7} {workers:>7} {name:>10} {lat['p50_ms']:>8.3f} {lat['p99_ms']:>8.3f} "
+        f"{rps:>8.0f}"
+    )
+
+
 def main() -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--quick", action="store_true")
@@ -203,9 +210,7 @@ def main() -> int:
             finally:
                 stop(floor)
             results.append({"vocab": vocab, "workers": workers, "path": "floor", **lat, "rps": rps})
-            print(
-                f"{vocab:>7} {workers:>7} {'floor':>10} {lat['p50_ms']:>8.3f} {lat['p99_ms']:>8.3f} {rps:>8.0f}"
-            )
+            print(row(vocab, workers, "floor", lat, rps))
             server, port = start_keepset(workers)
             try:
                 for name, body, media in (
@@ -217,9 +222,7 @@ def main() -> int:
                     results.append(
                         {"vocab": vocab, "workers": workers, "path": name, **lat, "rps": rps}
                     )
-                    print(
-                        f"{vocab:>7} {workers:>7} {name:>10} {lat['p50_ms']:>8.3f} {lat['p99_ms']:>8.3f} {rps:>8.0f}"
-                    )
+                    print(row(vocab, workers, name, lat, rps))
             finally:
                 stop(server)
     args.out.parent.mkdir(parents=True, exist_ok=True)

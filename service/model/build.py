@@ -2,7 +2,7 @@
 
 Run from the repository root (the only place in keepset that uses PyTorch)::
 
-    pip install -e '.[train]'
+    pip install -e '.[train]'      # torch (CPU build) and onnx, for the exporter
     nice -n 19 python -m service.model.build --out service/model/bundled
 
 Stages, each skippable on a rerun because its output is kept under ``--work``:
@@ -623,7 +623,7 @@ head counts, head size and the held-out perplexity.
 ## Rebuilding
 
 ```
-pip install -e '.[train]'          # torch=={s["training"]["torch"].split("+")[0]} (CPU)
+pip install -e '.[train]'          # torch=={s["training"]["torch"].split("+")[0]} (CPU) and onnx
 nice -n 19 python -m service.model.build --out service/model/bundled
 ```
 
@@ -633,6 +633,12 @@ the files here.  With the same seed, versions and thread count the result is rep
 floating-point differences between machines.
 """
     (out / "MODEL_CARD.md").write_text(card)
+
+
+def _version(dist: str) -> str:
+    from importlib.metadata import version
+
+    return version(dist)
 
 
 def main(argv: list[str] | None = None) -> None:
@@ -699,6 +705,9 @@ def main(argv: list[str] | None = None) -> None:
         "corpus": split,
         "training": {
             **dataclasses.asdict(sched),
+            "onnx": _version("onnx"),
+            "onnxruntime": _version("onnxruntime"),
+            "tokenizers": _version("tokenizers"),
             "dropout": shape.dropout,
             "train_seconds": trained["train_seconds"],
             "history": trained["history"],

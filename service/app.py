@@ -20,12 +20,13 @@ import time
 import uuid
 from collections.abc import AsyncIterator
 from dataclasses import dataclass, field
+from functools import partial
 from typing import Any
 
 import numpy as np
 import orjson
 from fastapi import FastAPI, Request
-from fastapi.responses import JSONResponse
+from fastapi.responses import JSONResponse, StreamingResponse
 from pydantic import BaseModel, ConfigDict, Field, StrictInt, ValidationError
 from starlette.background import BackgroundTask
 from starlette.concurrency import run_in_threadpool
@@ -33,12 +34,14 @@ from starlette.responses import Response
 
 from service import metrics, problems
 from service.keys import Identity, KeyRing, load_keyring
+from service.model import Model, ModelError, PromptError, PromptTooLong
 from service.npy import NpyError, read_npy
-from service.policy import AdjustError, apply_adjust
+from service.policy import AdjustError, Policy, apply_adjust
 from service.problems import Problem
+from service.prompting import PromptRun, StepRecord
 from service.registry import RegistrySnapshot, load_registry, reload_registry
-from service.routing import choose_arm
-from service.sampling import InputError, as_batch, pick
+from service.routing import Route, choose_arm
+from service.sampling import Chain, InputError, as_batch, pick
 from service.settings import Settings
 
 log = logging.getLogger("keepset")
@@ -63,6 +66,21 @@ class PickBody(BaseModel):
     adjust: dict[str, float] = {}
 
 
+class ContinueBody(BaseModel):
+    """JSON body of ``POST /v1/continue``."""
+
+    model_config = ConfigDict(extra="forbid")
+
+    prompt: str = Field(max_length=1_000_000)
+    budget: StrictInt | None = Field(
+        default=None, ge=1, description="tokens to generate at most; capped by the policy's"
+    )
+    seed: StrictInt | None = Field(default=None, ge=0, lt=2**64)
+    routing_key: str | None = Field(default=None, max_length=512)
+    adjust: dict[str, float] = {}
+    stream: bool = False
+
+
 @dataclass
 class Live:
     """What the running app serves; ``snapshot`` is replaced whole on reload."""
@@ -74,6 +92,8 @@ class Live:
     in_flight: int = 0
     last_reload: dict[str, Any] = field(default_factory=dict)
     rng: random.Random = field(default_factory=random.Random)
+    model: Model | None = None
+    model_problem: str | None = "the model is still loading"
 
 
 def create_app(settings: Settings | None = None) -> FastAPI:
@@ -89,9 +109,11 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         with contextlib.suppress(NotImplementedError, RuntimeError, ValueError):
             loop.add_signal_handler(signal.SIGHUP, lambda: _reload(live, "signal"))
         poller = asyncio.create_task(_poll_registry(live))
+        loader = asyncio.create_task(_load_model(live))
         yield
         live.draining = True
         poller.cancel()
+        loader.cancel()
 
     app = FastAPI(
         title="keepset",
@@ -356,31 +378,67 @@ _INPUT_STATUS = {
 }
 
 
+# --- who serves a request: route, arm, policy, adjustments ------------------------------------
+
+
+@dataclass(frozen=True)
+class _Served:
+    policy: Policy
+    chain: Chain
+    label: str
+    clamped: list[str]
+
+
+def _route(snapshot: RegistrySnapshot, client: str) -> Route:
+    route = snapshot.route_for(client)
+    if route is None:
+        raise Problem(403, "unknown-client", f"client {client!r} has no route in routes.yaml")
+    return route
+
+
+def _serve(
+    snapshot: RegistrySnapshot,
+    client: str,
+    route: Route,
+    routing_key: str | None,
+    adjust: dict[str, float],
+    live: Live,
+) -> _Served:
+    """The arm, policy and (adjusted) chain that serve this request."""
+    arm_index = choose_arm(client, routing_key, route.arms, live.rng)
+    arm = route.arms[arm_index]
+    policy = snapshot.policy(arm.policy)
+    chain = snapshot.chain(arm.policy)
+    clamped: list[str] = []
+    if adjust:
+        try:
+            chain, clamped = apply_adjust(policy, adjust, chain)
+        except AdjustError as exc:
+            metrics.ADJUST_REFUSED.labels(client, exc.metric_field).inc()
+            raise Problem(
+                422, f"adjust-{exc.reason.replace('_', '-')}", str(exc), field=exc.field
+            ) from None
+        for name in clamped:
+            metrics.ADJUST_REFUSED.labels(client, name).inc()
+    return _Served(policy, chain, arm.public_label(arm_index), clamped)
+
+
+def _input_problem(exc: InputError) -> Problem:
+    return Problem(
+        _INPUT_STATUS.get(exc.reason, 400), f"input-{exc.reason.replace('_', '-')}", str(exc)
+    )
+
+
 def _add_routes(app: FastAPI, live: Live) -> None:
     @app.post("/v1/pick", summary="Logits in, tokens and per-row diagnostics out")
     async def pick_tokens(request: Request) -> Response:
         client = _client(request, live)
         snapshot = live.snapshot  # one registry for the whole request
-        route = snapshot.route_for(client)
-        if route is None:
-            raise Problem(403, "unknown-client", f"client {client!r} has no route in routes.yaml")
+        route = _route(snapshot, client)
         data = await _pick_input(request, live)
         rows = _check_limits(data.logits, live)
-        arm_index = choose_arm(client, data.routing_key, route.arms, live.rng)
-        arm = route.arms[arm_index]
-        policy = snapshot.policy(arm.policy)
-        chain = snapshot.chain(arm.policy)
-        clamped: list[str] = []
-        if data.adjust:
-            try:
-                chain, clamped = apply_adjust(policy, data.adjust, chain)
-            except AdjustError as exc:
-                metrics.ADJUST_REFUSED.labels(client, exc.metric_field).inc()
-                raise Problem(
-                    422, f"adjust-{exc.reason.replace('_', '-')}", str(exc), field=exc.field
-                ) from None
-            for name in clamped:
-                metrics.ADJUST_REFUSED.labels(client, name).inc()
+        served = _serve(snapshot, client, route, data.routing_key, data.adjust, live)
+        chain, policy, label, clamped = served.chain, served.policy, served.label, served.clamped
         try:
             args = (chain, rows, data.seed, data.history)
             threads = live.settings.sampling_threads
@@ -389,12 +447,7 @@ def _add_routes(app: FastAPI, live: Live) -> None:
             else:
                 out = await run_in_threadpool(pick, *args, threads=threads)
         except InputError as exc:
-            raise Problem(
-                _INPUT_STATUS.get(exc.reason, 400),
-                f"input-{exc.reason.replace('_', '-')}",
-                str(exc),
-            ) from None
-        label = arm.public_label(arm_index)
+            raise _input_problem(exc) from None
         metrics.observe_rows(
             client=client,
             policy=policy.name,
@@ -429,11 +482,78 @@ def _add_routes(app: FastAPI, live: Live) -> None:
         if clamped:
             body["clamped"] = clamped
         shadow = (
-            BackgroundTask(_run_shadows, snapshot, route.shadow, rows, data, out.seed)
+            BackgroundTask(_run_shadows, snapshot, route.shadow, rows, data.history, out.seed)
             if route.shadow
             else None
         )
         return JSONResponse(body, background=shadow)
+
+    @app.post("/v1/continue", summary="Prompt in, a continuation with per-step diagnostics out")
+    async def continue_prompt(request: Request) -> Response:
+        client = _client(request, live)
+        snapshot = live.snapshot
+        route = _route(snapshot, client)
+        body = await _continue_input(request, live)
+        model = live.model
+        if model is None:
+            raise Problem(503, "model-not-ready", live.model_problem or "the model is not loaded")
+        served = _serve(snapshot, client, route, body.routing_key, body.adjust, live)
+        policy = served.policy
+        budget = policy.budget if body.budget is None else min(body.budget, policy.budget)
+        try:
+            # Tokenizing a long prompt takes a while: off the event loop.
+            run = await run_in_threadpool(
+                partial(
+                    PromptRun,
+                    model,
+                    served.chain,
+                    body.prompt,
+                    budget=budget,
+                    seed=body.seed,
+                    stop=policy.stop,
+                    keep_logits=bool(route.shadow),
+                )
+            )
+        except PromptTooLong as exc:
+            raise Problem(
+                413, "prompt-too-long", f"{exc}; shorten the prompt", tokens=exc.length
+            ) from None
+        except (PromptError, InputError) as exc:
+            raise Problem(422, "bad-prompt", str(exc)) from None
+        head: dict[str, Any] = {
+            "request_id": uuid.uuid4().hex,
+            "client": client,
+            "policy": policy.name,
+            "version": policy.version,
+            "arm": served.label,
+            "seed": run.seed,
+            "budget": budget,
+            "prompt_tokens": run.prompt_tokens,
+        }
+        if served.clamped:
+            head["clamped"] = served.clamped
+        after = BackgroundTask(_after_continuation, snapshot, route, client, served, run)
+        if body.stream:
+            return StreamingResponse(
+                _event_stream(head, run),
+                media_type="text/event-stream",
+                headers={"Cache-Control": "no-store", "X-Accel-Buffering": "no"},
+                background=after,
+            )
+        try:
+            records = await run_in_threadpool(list, run)
+        except (InputError, ValueError) as exc:  # a model that emits no finite logit
+            raise Problem(422, "model-output", str(exc)) from None
+        return JSONResponse(
+            {
+                **head,
+                "text": run.text,
+                "tokens": run.tokens,
+                "finish": run.finish,
+                "steps": [r.as_dict() for r in records],
+            },
+            background=after,
+        )
 
     @app.get("/v1/policies", summary="Every published policy version")
     async def list_policies(request: Request) -> dict[str, Any]:
@@ -477,13 +597,15 @@ def _add_routes(app: FastAPI, live: Live) -> None:
     async def healthz() -> dict[str, str]:
         return {"status": "ok"}
 
-    @app.get("/readyz", summary="Readiness: registry loaded, not draining")
+    @app.get("/readyz", summary="Readiness: registry and model loaded, not draining")
     async def readyz() -> JSONResponse:
         reasons = []
         if live.draining:
             reasons.append("draining")
         if not live.snapshot.policy_count():
             reasons.append("no policies loaded")
+        if live.model_problem is not None:
+            reasons.append(live.model_problem)
         if reasons:
             return JSONResponse(
                 {
@@ -498,17 +620,85 @@ def _add_routes(app: FastAPI, live: Live) -> None:
         return JSONResponse({"status": "ready", "policies": live.snapshot.policy_count()})
 
 
+# --- the prompt path ----------------------------------------------------------------------------
+
+
+async def _continue_input(request: Request, live: Live) -> ContinueBody:
+    media = request.headers.get("content-type", "").split(";")[0].strip().lower()
+    if media != "application/json":
+        raise Problem(415, "media-type", f"send application/json, not {media or 'no Content-Type'}")
+    body = await _read_body(request, live)
+    try:
+        return ContinueBody.model_validate_json(body)
+    except ValidationError as exc:
+        kind = "malformed-json" if _is_json_error(exc) else "malformed"
+        raise Problem(400, kind, _validation_text(exc)) from None
+
+
+def _is_json_error(exc: ValidationError) -> bool:
+    return any(e["type"] == "json_invalid" for e in exc.errors())
+
+
+def _sse(event: str, data: dict[str, Any]) -> bytes:
+    return b"event: " + event.encode() + b"\ndata: " + orjson.dumps(data) + b"\n\n"
+
+
+async def _event_stream(head: dict[str, Any], run: PromptRun) -> AsyncIterator[bytes]:
+    """One ``step`` event per token, then ``done``; each step runs off the event loop, so a
+    client that disconnects (Starlette then cancels this generator) stops the model."""
+    yield _sse("start", head)
+    done: dict[str, Any]
+    try:
+        while True:
+            record: StepRecord | None = await run_in_threadpool(next, run, None)
+            if record is None:
+                break
+            yield _sse("step", record.as_dict())
+        done = {"text": run.text, "tokens": run.tokens, "finish": run.finish}
+    except (InputError, ValueError) as exc:
+        done = {"text": run.text, "tokens": run.tokens, "finish": "error", "detail": str(exc)}
+    finally:
+        # After a cancel the worker thread may still be inside the step it was running; the
+        # generator is then left to the garbage collector and no further step starts.
+        with contextlib.suppress(ValueError):
+            run.close()
+    yield _sse("done", {**head, **done})
+
+
+def _after_continuation(
+    snapshot: RegistrySnapshot, route: Route, client: str, served: _Served, run: PromptRun
+) -> None:
+    """Metrics for every generated step (as for /v1/pick rows), then the shadow policies on the
+    same logits, after the answer has gone out."""
+    records = run.records
+    if not records:
+        return
+    metrics.observe_rows(
+        client=client,
+        policy=served.policy.name,
+        version=served.policy.version,
+        arm=served.label,
+        role="served",
+        kept=[r.kept for r in records],
+        entropy=[r.entropy for r in records],
+        fallback=[r.fallback for r in records],
+    )
+    if route.shadow and run.logits:
+        rows = np.stack(run.logits[: len(records)])
+        _run_shadows(snapshot, route.shadow, rows, run.histories[: len(records)], run.seed)
+
+
 def _run_shadows(
     snapshot: RegistrySnapshot,
     shadows: tuple[tuple[str, int], ...],
     rows: np.ndarray,
-    data: _PickInput,
+    history: list[list[int]] | None,
     seed: int,
 ) -> None:
     """Evaluate shadow policies on the same logits: metrics only, never returned."""
     for ref in shadows:
         try:
-            out = pick(snapshot.chain(ref), rows, seed, data.history)
+            out = pick(snapshot.chain(ref), rows, seed, history)
         except InputError:
             continue  # the shadow cannot take these logits; the served answer stands
         metrics.observe_rows(
@@ -537,6 +727,19 @@ def _reload(live: Live, trigger: str) -> dict[str, Any]:
             "registry reload refused (%s); keeping the last good: %s", trigger, report.refused
         )
     return result
+
+
+async def _load_model(live: Live) -> None:
+    """Load the model off the event loop; /v1/pick serves meanwhile, readiness waits for it."""
+    folder = live.settings.model
+    try:
+        live.model = await run_in_threadpool(Model, folder, threads=live.settings.model_threads)
+    except ModelError as exc:
+        live.model_problem = f"model not loaded: {exc}"
+        log.error("%s; /v1/continue answers 503 until it is fixed and keepset restarted", exc)
+    else:
+        live.model_problem = None
+        log.info("model %s loaded from %s", live.model.info.name, folder)
 
 
 async def _poll_registry(live: Live) -> None:

@@ -44,13 +44,21 @@ def free_port() -> int:
 
 
 class Server:
-    def __init__(self, base_url: str, process: subprocess.Popen[bytes], policies: Path):
+    def __init__(self, base_url: str, process: subprocess.Popen[bytes], policies: Path, log: Path):
         self.base_url = base_url
         self.process = process
         self.policies = policies
+        self.log = log
+
+    def log_text(self) -> str:
+        return self.log.read_text(encoding="utf-8", errors="replace")
 
 
-def start_server(policies: Path, workers: int = 2, **env: str) -> Server:
+def start_server(
+    policies: Path, workers: int = 2, *, wait_ready: bool = True, **env: str
+) -> Server:
+    """``keepset serve`` on a free loopback port; returns once /readyz answers 200 (or, with
+    ``wait_ready=False``, once it answers at all)."""
     port = free_port()
     environment = {
         **os.environ,
@@ -62,20 +70,25 @@ def start_server(policies: Path, workers: int = 2, **env: str) -> Server:
         "KEEPSET_LOG_LEVEL": "warning",
         **env,
     }
-    process = subprocess.Popen(
-        [sys.executable, "-m", "service.cli", "serve"],
-        env=environment,
-        stdout=subprocess.DEVNULL,
-        stderr=subprocess.PIPE,
-    )
+    # The log goes to a file, not a pipe: a pipe nobody reads would block a chatty server.
+    log = policies.parent / f"keepset-{port}.log"
+    with log.open("wb") as sink:
+        process = subprocess.Popen(
+            [sys.executable, "-m", "service.cli", "serve"],
+            env=environment,
+            stdout=sink,
+            stderr=subprocess.STDOUT,
+        )
     base = f"http://127.0.0.1:{port}"
+    server = Server(base, process, policies, log)
     deadline = time.monotonic() + 30
     while time.monotonic() < deadline:
         if process.poll() is not None:
-            raise RuntimeError(process.stderr.read().decode() if process.stderr else "exited")
+            raise RuntimeError(f"keepset serve exited: {server.log_text()}")
         try:
-            if httpx.get(f"{base}/readyz", timeout=1).status_code == 200:
-                return Server(base, process, policies)
+            status = httpx.get(f"{base}/readyz", timeout=1).status_code
+            if status == 200 or not wait_ready:
+                return server
         except httpx.HTTPError:
             pass
         time.sleep(0.2)

@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import base64
 import io
+import time
 from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
@@ -205,7 +206,12 @@ def test_policy_listing(client: TestClient) -> None:
 
 def test_readiness_and_docs(client: TestClient) -> None:
     assert client.get("/healthz").json() == {"status": "ok"}
-    assert client.get("/readyz").status_code == 200
+    # Ready once the model has loaded in the background (picks are served meanwhile).
+    deadline = time.monotonic() + 30
+    while (ready := client.get("/readyz")).status_code != 200:
+        assert_problem(ready, 503, "loading")
+        assert time.monotonic() < deadline
+        time.sleep(0.05)
     assert client.get("/openapi.json").status_code == 200
     live = client.app.state.live  # type: ignore[attr-defined]
     live.draining = True

@@ -1,0 +1,120 @@
+"""The prompt path: continue a prompt with the model, one policy pick per generated token.
+
+This module owns the glue between the model runner (``service.model``) and the sampling core:
+every step's next-token logits go through the policy's chain with the step's own random stream
+(derived from ``(seed, t)``), the prompt and the tokens generated so far are the history the
+penalties see, and each step's diagnostics are kept for the response and the metrics. No web or
+metrics imports live here; the HTTP layer streams or collects what :class:`PromptRun` yields.
+"""
+
+from __future__ import annotations
+
+import secrets
+from collections.abc import Sequence
+from dataclasses import asdict, dataclass
+
+import numpy as np
+import numpy.typing as npt
+
+from service.model import Continuation, Model
+from service.sampling import Chain, PickResult, pick
+
+FRESH_SEED_BITS = 53  # fresh seeds stay exact in JSON numbers, like the pick path's
+
+
+@dataclass(frozen=True)
+class StepRecord:
+    """One generated token: its text piece and the per-step diagnostics of DESIGN.md §1."""
+
+    token: int
+    text: str
+    prob: float
+    logprob: float
+    entropy: float
+    kept: int
+    kept_mass: float
+    fallback: str | None
+
+    def as_dict(self) -> dict[str, object]:
+        return asdict(self)
+
+
+class PromptRun:
+    """Iterator of :class:`StepRecord` for one continuation under one chain.
+
+    The model runs only while the caller iterates, so a caller that stops iterating (a client
+    that went away) stops the work. After the last step, :attr:`finish` is ``"budget"``,
+    ``"end"`` or ``"stop"``; :attr:`records` holds every step yielded so far, and
+    :attr:`logits` the raw logits rows of those steps when ``keep_logits`` was asked for (the
+    shadow policies are evaluated on them afterwards).
+    """
+
+    def __init__(
+        self,
+        model: Model,
+        chain: Chain,
+        prompt: str,
+        *,
+        budget: int,
+        seed: int | None = None,
+        stop: Sequence[str] = (),
+        keep_logits: bool = False,
+    ) -> None:
+        self.seed = secrets.randbits(FRESH_SEED_BITS) if seed is None else seed
+        self.chain = chain
+        self.records: list[StepRecord] = []
+        self.histories: list[list[int]] = []
+        self.logits: list[npt.NDArray[np.float32]] | None = [] if keep_logits else None
+        self._picks: list[PickResult] = []
+        # The start marker put before text prompts is not something the penalties should see.
+        self._skip = 0 if model.info.start_id is None else 1
+        # Raises PromptTooLong / PromptError before any model call.
+        self._continuation: Continuation = model.generate(prompt, budget, self._step, stop=stop)
+
+    def _step(self, row: npt.NDArray[np.float32], history: list[int]) -> int:
+        step = len(self._picks)
+        history = history[self._skip :]
+        out = pick(self.chain, row, self.seed, [history], first_stream=step)
+        self._picks.append(out)
+        if self.logits is not None:
+            self.logits.append(row)
+            self.histories.append(history)
+        return int(out.tokens[0])
+
+    @property
+    def prompt_tokens(self) -> int:
+        return len(self._continuation.prompt_ids)
+
+    @property
+    def finish(self) -> str | None:
+        return self._continuation.finish
+
+    @property
+    def tokens(self) -> list[int]:
+        return [r.token for r in self.records]
+
+    @property
+    def text(self) -> str:
+        return "".join(r.text for r in self.records)
+
+    def __iter__(self) -> PromptRun:
+        return self
+
+    def __next__(self) -> StepRecord:
+        step = next(self._continuation)
+        out = self._picks[len(self.records)]
+        record = StepRecord(
+            token=step.token_id,
+            text=step.text,
+            prob=float(out.prob[0]),
+            logprob=float(out.logprob[0]),
+            entropy=float(out.entropy[0]),
+            kept=int(out.kept[0]),
+            kept_mass=float(out.kept_mass[0]),
+            fallback=out.fallback[0],
+        )
+        self.records.append(record)
+        return record
+
+    def close(self) -> None:
+        self._continuation.close()

@@ -1,0 +1,140 @@
+"""The prompt path end to end on a real ``keepset serve`` on 127.0.0.1: plain and streamed
+continuations read with a real HTTP client, a disconnect that stops the model, and a broken
+model folder that keeps readiness at 503 with the reason."""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+import time
+from collections.abc import Iterator
+from pathlib import Path
+from typing import Any
+
+import httpx
+import pytest
+from conftest import Server, auth, start_server, stop_server
+
+# A policy that never ends on its own: the end token is banned and there is no stop text, so
+# only the budget (or a client that goes away) ends a continuation.
+LONG_TAKE = """\
+name: long-take
+version: 1
+owner: test-rig
+summary: Never ends by itself; for the disconnect test.
+chain:
+  - ban: [0]
+  - temperature: 1.0
+min_keep: 1
+fallback: greedy
+budget: 4000
+stop: []
+expect:
+  kept_median_min: 1
+"""
+
+
+def sse_events(lines: Iterator[str]) -> Iterator[tuple[str, dict[str, Any]]]:
+    """Parse Server-Sent Events (event + one data line each, blank line between)."""
+    event, data = "message", ""
+    for line in lines:
+        if line.startswith("event: "):
+            event = line[len("event: ") :]
+        elif line.startswith("data: "):
+            data = line[len("data: ") :]
+        elif not line and data:
+            yield event, json.loads(data)
+            event, data = "message", ""
+
+
+def rows_total(server: Server, policy: str) -> float:
+    text = httpx.get(f"{server.base_url}/metrics", timeout=5).text
+    return sum(
+        float(line.rsplit(" ", 1)[1])
+        for line in text.splitlines()
+        if line.startswith("keepset_rows_total{") and f'policy="{policy}"' in line
+    )
+
+
+@pytest.fixture
+def long_take_server(registry: Path) -> Iterator[Server]:
+    (registry / "long-take").mkdir()
+    (registry / "long-take" / "1.yaml").write_text(LONG_TAKE)
+    publish = [sys.executable, "-m", "service.cli", "policy", "publish", str(registry)]
+    subprocess.run([*publish, "long-take"], check=True, capture_output=True)
+    routes = (registry / "routes.yaml").read_text()
+    (registry / "routes.yaml").write_text(routes.replace("box-office@1", "long-take@1"))
+    running = start_server(registry, workers=2)
+    yield running
+    stop_server(running)
+
+
+def test_plain_and_streamed_continuations(long_take_server: Server) -> None:
+    url = f"{long_take_server.base_url}/v1/continue"
+    body = {"prompt": "Enter the porter, with a lantern.", "seed": 4, "budget": 40}
+    plain = httpx.post(url, json=body, headers=auth("usher-desk"), timeout=30)
+    assert plain.status_code == 200, plain.text
+    answer = plain.json()
+    assert answer["policy"] == "long-take" and answer["finish"] == "budget"
+    assert len(answer["tokens"]) == 40 and answer["text"]
+    with httpx.stream(
+        "POST", url, json={**body, "stream": True}, headers=auth("usher-desk"), timeout=30
+    ) as r:
+        assert r.status_code == 200
+        assert r.headers["content-type"].startswith("text/event-stream")
+        events = list(sse_events(r.iter_lines()))
+    assert [e for e, _ in events] == ["start"] + ["step"] * 40 + ["done"]
+    done = events[-1][1]
+    assert done["tokens"] == answer["tokens"] and done["text"] == answer["text"]
+    assert "".join(d["text"] for e, d in events if e == "step") == answer["text"]
+
+
+def test_a_client_that_goes_away_stops_the_generation(long_take_server: Server) -> None:
+    url = f"{long_take_server.base_url}/v1/continue"
+    body = {"prompt": "Thunder. Enter three watchmen.", "stream": True}
+    before = rows_total(long_take_server, "long-take")
+    with httpx.stream("POST", url, json=body, headers=auth("usher-desk"), timeout=30) as r:
+        steps = 0
+        for event, _ in sse_events(r.iter_lines()):
+            steps += event == "step"
+            if steps == 3:
+                break  # leaving the block closes the connection mid-stream
+    # The server counts every generated step once the stream has ended; wait until that count
+    # settles, then check that it stopped far short of the 4000-token budget (~10 s of work).
+    deadline = time.monotonic() + 10
+    counted = -1.0
+    while time.monotonic() < deadline:
+        time.sleep(0.5)
+        now = rows_total(long_take_server, "long-take") - before
+        if now == counted and now > 0:
+            break
+        counted = now
+    assert 3 <= counted < 400, counted
+
+
+def test_broken_model_folder_keeps_readiness_at_503(registry: Path, tmp_path: Path) -> None:
+    empty = tmp_path / "no-model-here"
+    empty.mkdir()
+    server = start_server(registry, workers=1, wait_ready=False, KEEPSET_MODEL=str(empty))
+    try:
+        deadline = time.monotonic() + 20
+        while True:
+            ready = httpx.get(f"{server.base_url}/readyz", timeout=5)
+            if "loading" not in ready.text or time.monotonic() > deadline:
+                break
+            time.sleep(0.1)
+        assert ready.status_code == 503
+        assert ready.headers["content-type"].startswith("application/problem+json")
+        assert "model not loaded" in ready.json()["detail"]
+        assert "missing model.onnx, tokenizer.json, model.json" in ready.json()["detail"]
+        continued = httpx.post(
+            f"{server.base_url}/v1/continue",
+            json={"prompt": "x"},
+            headers=auth("usher-desk"),
+            timeout=5,
+        )
+        assert continued.status_code == 503
+        assert "model.onnx" in server.log_text()  # the operator sees why in the log too
+    finally:
+        stop_server(server)

@@ -82,7 +82,7 @@ def pick(
     """Draw one token per row under ``chain``.
 
     ``logits`` is ``[V]`` or ``[B, V]`` (float16/32/64; worked on as float32). Row ``b`` draws
-    from its own stream, the ``first_stream + b``-th double of PCG64 seeded with ``seed``, so a
+    from its own stream, output ``first_stream + b`` of SplitMix64 seeded with ``seed``, so a
     row's token depends only on its logits, its history, the chain and (seed, stream). Without a
     seed a fresh one is made; ``PickResult.seed`` always says which seed was used.
     """
@@ -111,8 +111,9 @@ def pick(
         prob[g.rows] = g.probs[r, at]
         kept[g.rows] = g.kept.sum(axis=1)
         kept_mass[g.rows] = _raw_mass(rows, g, log_norm)
-        for b in g.rows.tolist():
-            fallback[b] = g.reason
+        if g.reason is not None:
+            for b in g.rows.tolist():
+                fallback[b] = g.reason
     logprob = rows[np.arange(n), tokens].astype(np.float64) - log_norm
     return PickResult(tokens, kept, kept_mass, entropy, prob, logprob, fallback, seed)
 
@@ -187,26 +188,30 @@ def _resolve(
 ) -> tuple[F32, list[_Group], F64, F64]:
     """(cleaned rows, groups covering every row, raw log-normaliser, raw entropy)."""
     top = rows.max(axis=1)
-    invalid = ~np.isfinite(top) & ~(top == -np.inf)  # NaN propagates through max; +inf is max
-    if invalid.any():
+    invalid = np.isnan(top) | (top == np.inf)  # NaN propagates through max; +inf is max
+    any_invalid = bool(invalid.any())
+    if any_invalid:
         rows = rows.copy()
         rows[invalid] = np.where(np.isfinite(rows[invalid]), rows[invalid], np.float32(-np.inf))
         top = rows.max(axis=1)
     if (top == -np.inf).any():
         b = int(np.flatnonzero(top == -np.inf)[0])
         raise InputError("no_finite", f"row {b} has no finite logit")
-    valid = np.flatnonzero(~invalid)
+    valid = np.flatnonzero(~invalid) if any_invalid else np.arange(rows.shape[0])
     log_norm, entropy, narrowed = _first_pass(chain, rows, top, histories, valid, threads)
     groups: list[_Group] = []
-    undecided: list[tuple[int, str]] = [(int(b), "non_finite") for b in np.flatnonzero(invalid)]
+    undecided: dict[str, IntArray] = {}
+    if any_invalid:
+        undecided["non_finite"] = np.flatnonzero(invalid)
     if valid.size:
         decided = _finish_chain(chain, narrowed, [histories[b] for b in valid])
-        empty = np.count_nonzero(decided.w > -np.inf, axis=1) == 0
-        keep = ~empty
-        groups.append(_group(valid[keep], decided, keep, None))
-        undecided += [(int(b), "empty") for b in valid[empty]]
-    for reason in ("non_finite", "empty"):
-        picked = np.array([b for b, r in undecided if r == reason], dtype=np.intp)
+        keep = (decided.w > -np.inf).any(axis=1)
+        if keep.all():
+            groups.append(_group(valid, decided, keep, None))
+        else:
+            groups.append(_group(valid[keep], decided, keep, None))
+            undecided["empty"] = valid[~keep]
+    for reason, picked in undecided.items():
         if picked.size:
             groups += _fall_back(chain.fallback, rows, histories, picked, reason)
     return rows, groups, log_norm, entropy
@@ -331,11 +336,24 @@ def _finish_chain(
 # --- checks and small helpers ----------------------------------------------------------------
 
 
+_MASK64 = (1 << 64) - 1
+_GOLDEN_GAMMA = 0x9E3779B97F4A7C15
+
+
 def _uniforms(seed: int, first_stream: int, count: int) -> F64:
-    bits = np.random.PCG64(seed)
-    if first_stream:
-        bits.advance(first_stream)
-    return np.random.Generator(bits).random(count)
+    """Outputs ``first_stream .. first_stream + count - 1`` of SplitMix64 seeded with ``seed``
+    (Steele, Lea & Flood 2014), as doubles in [0, 1) from their top 53 bits.
+
+    SplitMix64 jumps straight to any output, so the stream of row ``b`` (or step ``t``) costs a
+    few integer operations instead of building and advancing a generator for every call.
+    """
+    out = np.empty(count)
+    for i in range(count):
+        z = (seed + (first_stream + i + 1) * _GOLDEN_GAMMA) & _MASK64
+        z = ((z ^ (z >> 30)) * 0xBF58476D1CE4E5B9) & _MASK64
+        z = ((z ^ (z >> 27)) * 0x94D049BB133111EB) & _MASK64
+        out[i] = ((z ^ (z >> 31)) >> 11) * 2.0**-53
+    return out
 
 
 def _check_seed(seed: int) -> None:
@@ -352,10 +370,10 @@ def _histories(history: Sequence[Sequence[int]] | None, shape: tuple[int, ...]) 
     out = []
     for r, ids in enumerate(history):
         try:
-            row = [int(i) for i in ids]
+            row = list(map(int, ids))
         except (TypeError, ValueError):
             raise InputError("history", f"history row {r} must be a list of token ids") from None
-        if any(i < 0 or i >= vocab for i in row):
+        if row and (min(row) < 0 or max(row) >= vocab):
             raise InputError("token_range", f"history row {r} has a token id outside [0, {vocab})")
         out.append(row)
     return out

@@ -1,0 +1,216 @@
+"""Benchmark of the prompt path: ``POST /v1/continue`` against a bare onnxruntime loop.
+
+All in one run, on the bundled model with one onnxruntime thread everywhere:
+
+- **bare loop**: onnxruntime alone, key/value cache, greedy argmax, no tokenizer work after the
+  prompt: the floor any prompt path on this model pays;
+- **policy work alone**: ``pick`` on the recorded logits rows of a continuation, per token;
+- **in process**: :class:`service.prompting.PromptRun` (model + policy + detokenizer), no HTTP;
+- **keepset over HTTP**: a real ``keepset serve`` (one worker) on 127.0.0.1, one client sending
+  ``/v1/continue`` requests one after another, plain JSON answers.
+
+The policies come from a private registry with two bench policies that never stop early (the end
+token is banned and there is no stop text), so every request produces exactly ``budget`` tokens:
+``bench-greedy`` and ``bench-chain`` (the prompt-book demo chain: repetition penalty,
+temperature 0.9, top_k 200, typical 0.95). Every loop is bounded in count and time.
+
+    .venv/bin/python loadtest/bench_continue.py [--budget 128] [--repeats 7] [--out FILE]
+"""
+
+from __future__ import annotations
+
+import argparse
+import http.client
+import json
+import os
+import shutil
+import statistics
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from bench_http import free_port, wait_ready
+
+from service.keys import load_keyring
+from service.model import BUNDLED, Model
+from service.prompting import PromptRun
+from service.sampling import parse_chain, pick
+
+ROOT = Path(__file__).resolve().parents[1]
+KEY = "demo-usher-desk-key"
+PROMPT = "Enter the porter, with a lantern. PORTER. Here's a knocking indeed! If a man"
+CHAINS: dict[str, list[dict[str, Any]]] = {
+    "bench-greedy": [{"ban": [0]}, {"greedy": True}],
+    "bench-chain": [
+        {"ban": [0]},
+        {"repetition_penalty": {"factor": 1.15, "window": 64}},
+        {"temperature": 0.9},
+        {"top_k": 200},
+        {"typical": 0.95},
+    ],
+}
+
+
+def bare_loop(model: Model, budget: int) -> float:
+    """Seconds for ``budget`` greedy tokens with onnxruntime and the cache, nothing else."""
+    ids = model.text_ids(PROMPT)
+    started = time.perf_counter()
+    logits, past = model.forward(np.asarray([ids], np.int64), model.empty_cache())
+    for _ in range(budget):
+        token = int(np.argmax(logits[0, -1]))
+        logits, past = model.forward(np.asarray([[token]], np.int64), past)
+    return time.perf_counter() - started
+
+
+def in_process(model: Model, name: str, budget: int, seed: int) -> tuple[float, PromptRun]:
+    run = PromptRun(model, parse_chain(CHAINS[name]), PROMPT, budget=budget, seed=seed)
+    started = time.perf_counter()
+    steps = sum(1 for _ in run)
+    elapsed = time.perf_counter() - started
+    assert steps == budget, (name, steps)
+    return elapsed, run
+
+
+def policy_alone(model: Model, name: str, budget: int, repeats: int) -> float:
+    """Median seconds per token of ``pick`` alone, on the rows a real continuation produced."""
+    chain = parse_chain(CHAINS[name])
+    run = PromptRun(model, chain, PROMPT, budget=budget, seed=3, keep_logits=True)
+    for _ in run:
+        pass
+    assert run.logits is not None
+    times = []
+    for _ in range(repeats):
+        started = time.perf_counter()
+        for t, (row, history) in enumerate(zip(run.logits, run.histories, strict=True)):
+            pick(chain, row, 3, [history], first_stream=t)
+        times.append((time.perf_counter() - started) / len(run.logits))
+    return statistics.median(times)
+
+
+def bench_registry(folder: Path, budget: int) -> None:
+    """A copy of the demo registry with the bench policies published and routed to usher-desk."""
+    shutil.copytree(ROOT / "policies", folder)
+    for name, chain in CHAINS.items():
+        (folder / name).mkdir()
+        policy = {
+            "name": name,
+            "version": 1,
+            "owner": "bench",
+            "summary": "Benchmark policy: never stops before its budget.",
+            "chain": chain,
+            "min_keep": 1,
+            "fallback": "greedy",
+            "budget": budget,
+            "stop": [],
+            "expect": {"kept_median_min": 1},
+        }
+        (folder / name / "1.yaml").write_text(json.dumps(policy, indent=1))  # JSON is YAML
+        subprocess.run(
+            [sys.executable, "-m", "service.cli", "policy", "publish", str(folder), name],
+            check=True,
+            capture_output=True,
+        )
+
+
+def start_server(registry: Path, name: str) -> tuple[subprocess.Popen[bytes], int]:
+    demo_routes = (ROOT / "policies" / "routes.yaml").read_text()
+    (registry / "routes.yaml").write_text(demo_routes.replace("box-office@1", f"{name}@1"))
+    port = free_port()
+    env = {
+        **os.environ,
+        "KEEPSET_POLICIES": str(registry),
+        "KEEPSET_PORT": str(port),
+        "KEEPSET_WORKERS": "1",
+        "KEEPSET_LOG_LEVEL": "warning",
+        "KEEPSET_RELOAD_POLL_SECONDS": "0",
+        "KEEPSET_MODEL_THREADS": "1",
+    }
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "service.cli", "serve"],
+        env=env,
+        stdout=subprocess.DEVNULL,
+        stderr=subprocess.DEVNULL,
+    )
+    wait_ready(port, "/readyz", proc)
+    return proc, port
+
+
+def over_http(port: int, name: str, budget: int, repeats: int) -> list[float]:
+    conn = http.client.HTTPConnection("127.0.0.1", port, timeout=60)
+    headers = {"Authorization": f"Bearer {KEY}", "Content-Type": "application/json"}
+    times = []
+    for i in range(repeats + 1):  # the first request warms the server up and is not counted
+        body = json.dumps({"prompt": PROMPT, "seed": i, "budget": budget})
+        started = time.perf_counter()
+        conn.request("POST", "/v1/continue", body=body, headers=headers)
+        response = conn.getresponse()
+        answer = json.loads(response.read())
+        elapsed = time.perf_counter() - started
+        assert response.status == 200, answer
+        assert answer["policy"] == name and len(answer["tokens"]) == budget, answer
+        if i:
+            times.append(elapsed)
+    conn.close()
+    return times
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--budget", type=int, default=128)
+    parser.add_argument("--repeats", type=int, default=7)
+    parser.add_argument("--out", type=Path, default=ROOT / "loadtest/results/continue.json")
+    args = parser.parse_args()
+    budget, repeats = args.budget, args.repeats
+    assert load_keyring(ROOT / "deploy" / "demo-keys.yaml").identify(KEY) is not None
+
+    model = Model(BUNDLED, threads=1)
+    bare_loop(model, budget)  # warm-up
+    bare = statistics.median(bare_loop(model, budget) for _ in range(repeats))
+    results: dict[str, Any] = {
+        "budget": budget,
+        "repeats": repeats,
+        "bare_tokens_per_s": budget / bare,
+        "policies": {},
+    }
+    with tempfile.TemporaryDirectory(prefix="keepset-bench-") as tmp:
+        registry = Path(tmp) / "policies"
+        bench_registry(registry, budget)
+        for name in CHAINS:
+            local = statistics.median(
+                in_process(model, name, budget, seed)[0] for seed in range(repeats)
+            )
+            alone = policy_alone(model, name, budget, repeats)
+            proc, port = start_server(registry, name)
+            try:
+                http_times = over_http(port, name, budget, repeats)
+            finally:
+                proc.terminate()
+                proc.wait(timeout=15)
+            served = statistics.median(http_times)
+            results["policies"][name] = {
+                "policy_ms_per_token": alone * 1e3,
+                "in_process_tokens_per_s": budget / local,
+                "http_tokens_per_s": budget / served,
+                "http_slower_than_bare": served / bare - 1,
+                "in_process_slower_than_bare": local / bare - 1,
+            }
+    print(f"budget {budget} tokens, median of {repeats}; bare loop {budget / bare:.0f} tokens/s")
+    print(
+        f"{'policy':<14}{'policy ms/token':>16}{'in-process tok/s':>18}{'HTTP tok/s':>12}"
+        f"{'HTTP vs bare':>14}"
+    )
+    for name, row in results["policies"].items():
+        print(
+            f"{name:<14}{row['policy_ms_per_token']:>16.3f}{row['in_process_tokens_per_s']:>18.0f}"
+            f"{row['http_tokens_per_s']:>12.0f}{row['http_slower_than_bare'] * 100:>13.1f}%"
+        )
+    args.out.parent.mkdir(parents=True, exist_ok=True)
+    args.out.write_text(json.dumps(results, indent=2) + "\n")
+
+
+if __name__ == "__main__":
+    main()

@@ -205,7 +205,7 @@ def _resolve(
         undecided["non_finite"] = np.flatnonzero(invalid)
     if valid.size:
         decided = _finish_chain(chain, narrowed, [histories[b] for b in valid])
-        keep = (decided.w > -np.inf).any(axis=1)
+        keep = np.count_nonzero(decided.w > -np.inf, axis=1) > 0
         if keep.all():
             groups.append(_group(valid, decided, keep, None))
         else:

@@ -29,6 +29,7 @@ test: lint
 bench: $(STAMP)
 	$(BIN)/python loadtest/bench_sampling.py
 	$(BIN)/python loadtest/bench_http.py
+	$(BIN)/python loadtest/bench_continue.py
 
 clean:
 	rm -rf $(VENV) .pytest_cache .mypy_cache .ruff_cache .hypothesis

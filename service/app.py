@@ -39,10 +39,12 @@ from service.npy import NpyError, read_npy
 from service.policy import AdjustError, Policy, apply_adjust
 from service.problems import Problem
 from service.prompting import PromptRun, StepRecord
+from service.ratio import sample_ratio
 from service.registry import RegistrySnapshot, load_registry, reload_registry
 from service.routing import Route, choose_arm
 from service.sampling import Chain, InputError, as_batch, pick
 from service.settings import Settings
+from service.watch import CollapseWatch
 
 log = logging.getLogger("keepset")
 
@@ -94,14 +96,23 @@ class Live:
     rng: random.Random = field(default_factory=random.Random)
     model: Model | None = None
     model_problem: str | None = "the model is still loading"
+    watch: CollapseWatch = field(default_factory=CollapseWatch)
 
 
 def create_app(settings: Settings | None = None) -> FastAPI:
     settings = settings or Settings()
     snapshot = load_registry(settings.policies)
-    live = Live(settings=settings, snapshot=snapshot, keys=load_keyring(settings.keys))
+    if settings.collapse_min_steps > settings.collapse_window:
+        raise ValueError("KEEPSET_COLLAPSE_MIN_STEPS must not exceed KEEPSET_COLLAPSE_WINDOW")
+    live = Live(
+        settings=settings,
+        snapshot=snapshot,
+        keys=load_keyring(settings.keys),
+        watch=CollapseWatch(settings.collapse_window, settings.collapse_min_steps),
+    )
     if not snapshot.valid:
         log.warning("registry loaded with problems: %s", snapshot.problem_lines())
+    metrics.set_arm_weights(_arm_shares(snapshot))
 
     @contextlib.asynccontextmanager
     async def lifespan(app: FastAPI) -> AsyncIterator[None]:
@@ -407,6 +418,8 @@ def _serve(
     """The arm, policy and (adjusted) chain that serve this request."""
     arm_index = choose_arm(client, routing_key, route.arms, live.rng)
     arm = route.arms[arm_index]
+    # Counted at assignment, before anything can fail: the split's unit is the request.
+    metrics.ASSIGNMENTS.labels(client, arm.public_label(arm_index)).inc()
     policy = snapshot.policy(arm.policy)
     chain = snapshot.chain(arm.policy)
     clamped: list[str] = []
@@ -448,16 +461,7 @@ def _add_routes(app: FastAPI, live: Live) -> None:
                 out = await run_in_threadpool(pick, *args, threads=threads)
         except InputError as exc:
             raise _input_problem(exc) from None
-        metrics.observe_rows(
-            client=client,
-            policy=policy.name,
-            version=policy.version,
-            arm=label,
-            role="served",
-            kept=out.kept.tolist(),
-            entropy=out.entropy.tolist(),
-            fallback=out.fallback,
-        )
+        _record_served(live, client, served, out.kept.tolist(), out.entropy.tolist(), out.fallback)
         body: dict[str, Any] = {
             "request_id": uuid.uuid4().hex,
             "client": client,
@@ -532,7 +536,7 @@ def _add_routes(app: FastAPI, live: Live) -> None:
         }
         if served.clamped:
             head["clamped"] = served.clamped
-        after = BackgroundTask(_after_continuation, snapshot, route, client, served, run)
+        after = BackgroundTask(_after_continuation, live, snapshot, route, client, served, run)
         if body.stream:
             return StreamingResponse(
                 _event_stream(head, run),
@@ -580,7 +584,7 @@ def _add_routes(app: FastAPI, live: Live) -> None:
     @app.get("/v1/routes", summary="Routes and arms (admin)")
     async def routes(request: Request) -> dict[str, Any]:
         _admin(request, live)
-        return live.snapshot.describe_routes()
+        return _routes_with_ratio(live.snapshot)
 
     @app.post("/v1/registry/reload", summary="Reload the registry (admin)")
     async def reload(request: Request) -> JSONResponse:
@@ -666,26 +670,91 @@ async def _event_stream(head: dict[str, Any], run: PromptRun) -> AsyncIterator[b
 
 
 def _after_continuation(
-    snapshot: RegistrySnapshot, route: Route, client: str, served: _Served, run: PromptRun
+    live: Live,
+    snapshot: RegistrySnapshot,
+    route: Route,
+    client: str,
+    served: _Served,
+    run: PromptRun,
 ) -> None:
     """Metrics for every generated step (as for /v1/pick rows), then the shadow policies on the
     same logits, after the answer has gone out."""
-    records = run.records
+    records = list(run.records)  # a cancelled stream's last step may still be landing
     if not records:
         return
-    metrics.observe_rows(
-        client=client,
-        policy=served.policy.name,
-        version=served.policy.version,
-        arm=served.label,
-        role="served",
-        kept=[r.kept for r in records],
-        entropy=[r.entropy for r in records],
-        fallback=[r.fallback for r in records],
-    )
+    kept = [r.kept for r in records]
+    fallback = [r.fallback for r in records]
+    _record_served(live, client, served, kept, [r.entropy for r in records], fallback)
     if route.shadow and run.logits:
         rows = np.stack(run.logits[: len(records)])
         _run_shadows(snapshot, route.shadow, rows, run.histories[: len(records)], run.seed)
+
+
+def _record_served(
+    live: Live,
+    client: str,
+    served: _Served,
+    kept: list[int],
+    entropy: list[float],
+    fallback: list[str | None],
+) -> None:
+    """Metrics for served rows, and the collapse watch that turns them into an alarm."""
+    policy = served.policy
+    metrics.observe_rows(
+        client=client,
+        policy=policy.name,
+        version=policy.version,
+        arm=served.label,
+        role="served",
+        kept=kept,
+        entropy=entropy,
+        fallback=fallback,
+    )
+    floor = policy.expect.kept_median_min
+    if floor is None:  # the owner made no promise to watch
+        return
+    change = live.watch.observe(policy.name, policy.version, kept, floor)
+    if change is None:
+        return
+    metrics.COLLAPSE_ACTIVE.labels(policy.name, str(policy.version)).set(int(change.active))
+    fields = (
+        f"policy={change.policy} version={change.version} median_kept={change.median:g} "
+        f"kept_median_min={change.floor:g} rows={change.rows}"
+    )
+    if change.active:
+        log.warning("collapse watch: kept set collapsed %s", fields)
+    else:
+        log.info("collapse watch: kept set recovered %s", fields)
+
+
+def _arm_shares(snapshot: RegistrySnapshot) -> dict[tuple[str, str], float]:
+    return {
+        (client, arm.public_label(i)): arm.weight / route.total_weight
+        for client, route in snapshot.routes.items()
+        for i, arm in enumerate(route.arms)
+    }
+
+
+def _routes_with_ratio(snapshot: RegistrySnapshot) -> dict[str, Any]:
+    """The routes, and per client the requests each arm got since start (all workers) with a
+    chi-square sample-ratio check against the weights."""
+    described = snapshot.describe_routes()
+    counts = metrics.assignment_counts()
+    for client, route in snapshot.routes.items():
+        labels = [arm.public_label(i) for i, arm in enumerate(route.arms)]
+        observed = [counts.get((client, label), 0) for label in labels]
+        check = sample_ratio(observed, [arm.weight for arm in route.arms])
+        described["clients"][client]["split"] = {
+            "since": "start",
+            "requests": dict(zip(labels, observed, strict=True)),
+            "expected_share": {
+                label: arm.weight / route.total_weight
+                for label, arm in zip(labels, route.arms, strict=True)
+            },
+            "chi_square": None if check is None else check.statistic,
+            "p_value": None if check is None else check.p_value,
+        }
+    return described
 
 
 def _run_shadows(
@@ -716,6 +785,7 @@ def _run_shadows(
 def _reload(live: Live, trigger: str) -> dict[str, Any]:
     snapshot, report = reload_registry(live.snapshot, live.settings.policies)
     live.snapshot = snapshot
+    metrics.set_arm_weights(_arm_shares(snapshot))
     outcome = "loaded" if report.ok else "kept_last_good"
     metrics.REGISTRY_RELOADS.labels(outcome).inc()
     result = {"outcome": outcome, "trigger": trigger, **report.as_dict()}

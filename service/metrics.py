@@ -77,7 +77,19 @@ COLLAPSE_ACTIVE = Gauge(
     "keepset_collapse_active",
     "1 while a policy version's recent kept sizes sit below its expect.kept_median_min.",
     ["policy", "version"],
-    multiprocess_mode="max",
+    multiprocess_mode="livemax",
+)
+ASSIGNMENTS = Counter(
+    "keepset_assignments",
+    "Requests assigned to each arm of a client's route (the unit of the A/B split).",
+    ["client", "arm"],
+)
+ARM_WEIGHT = Gauge(
+    "keepset_arm_weight",
+    "Configured share of a client's requests for each arm (0 for arms no longer routed).",
+    ["client", "arm"],
+    # The newest write wins: a worker that has just reloaded knows the current weights.
+    multiprocess_mode="livemostrecent",
 )
 
 
@@ -108,15 +120,45 @@ def observe_rows(
             FALLBACKS.labels(policy, v, reason).inc()
 
 
-def exposition() -> tuple[bytes, str]:
-    """The /metrics body and content type, aggregated over workers in multiprocess mode."""
+def set_arm_weights(weights: dict[tuple[str, str], float]) -> None:
+    """Export the configured arm shares; arms seen before but no longer routed go to 0 (a
+    multiprocess gauge cannot drop a label, and 0 is what such an arm now gets)."""
+    for client, arm in _exported_arms - set(weights):
+        ARM_WEIGHT.labels(client, arm).set(0)
+    for (client, arm), share in weights.items():
+        ARM_WEIGHT.labels(client, arm).set(share)
+    _exported_arms.update(weights)
+
+
+_exported_arms: set[tuple[str, str]] = set()
+
+
+def _registry() -> CollectorRegistry:
     if os.environ.get("PROMETHEUS_MULTIPROC_DIR"):
         registry = CollectorRegistry()
         prom_multiprocess.MultiProcessCollector(registry)  # type: ignore[no-untyped-call]
-        return generate_latest(registry), CONTENT_TYPE_LATEST
+        return registry
     from prometheus_client import REGISTRY
 
-    return generate_latest(REGISTRY), CONTENT_TYPE_LATEST
+    return REGISTRY
+
+
+def exposition() -> tuple[bytes, str]:
+    """The /metrics body and content type, aggregated over workers in multiprocess mode."""
+    return generate_latest(_registry()), CONTENT_TYPE_LATEST
+
+
+def assignment_counts() -> dict[tuple[str, str], int]:
+    """Requests per (client, arm) since start, summed over every worker."""
+    counts: dict[tuple[str, str], int] = {}
+    for family in _registry().collect():
+        if family.name != "keepset_assignments":
+            continue
+        for sample in family.samples:
+            if sample.name == "keepset_assignments_total":
+                key = (sample.labels["client"], sample.labels["arm"])
+                counts[key] = counts.get(key, 0) + int(sample.value)
+    return counts
 
 
 def worker_exited(pid: int) -> None:

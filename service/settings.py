@@ -41,4 +41,10 @@ class Settings(BaseSettings):
     reload_poll_seconds: float = Field(default=2.0, ge=0.0, description="0 disables polling")
     model_threads: int = Field(default=1, ge=1, description="onnxruntime intra-op threads")
     sampling_threads: int = Field(default=1, ge=1, description="threads per batch in the sampler")
+    collapse_window: int = Field(
+        default=200, ge=1, description="served rows per policy version the collapse watch keeps"
+    )
+    collapse_min_steps: int = Field(
+        default=50, ge=1, description="rows needed before the collapse watch decides"
+    )
     log_level: str = "info"

@@ -11,9 +11,14 @@ import sys
 import time
 from collections.abc import Iterator
 from pathlib import Path
+from typing import Any
 
 import httpx
 import pytest
+from fastapi.testclient import TestClient
+
+from service.app import create_app
+from service.settings import Settings
 
 ROOT = Path(__file__).resolve().parents[1]
 DEMO_KEYS = {
@@ -27,6 +32,28 @@ DEMO_KEYS = {
 
 def auth(who: str) -> dict[str, str]:
     return {"Authorization": f"Bearer {DEMO_KEYS[who]}"}
+
+
+def in_process(registry: Path, **settings: Any) -> TestClient:
+    """The app on a registry folder with the demo keys and no file polling, in process (use it
+    as a context manager so start-up and shutdown run)."""
+    options: dict[str, Any] = {
+        "keys": ROOT / "deploy" / "demo-keys.yaml",
+        "reload_poll_seconds": 0,
+        **settings,
+    }
+    return TestClient(create_app(Settings(policies=registry, **options)))
+
+
+def assert_problem(response: Any, status: int, needle: str = "") -> dict[str, Any]:
+    """An RFC 9457 problem document with this status whose detail mentions ``needle``."""
+    assert response.status_code == status, response.text
+    assert response.headers["content-type"].startswith("application/problem+json")
+    body: dict[str, Any] = response.json()
+    assert {"type", "title", "status", "detail"} <= set(body)
+    assert body["status"] == status and body["type"].startswith("urn:keepset:problem:")
+    assert needle in body["detail"], body
+    return body
 
 
 @pytest.fixture

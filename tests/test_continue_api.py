@@ -12,17 +12,15 @@ from typing import Any
 
 import numpy as np
 import pytest
-from conftest import ROOT, auth
+from conftest import assert_problem, auth, in_process
 from fastapi.testclient import TestClient
 from prometheus_client import REGISTRY
 from scipy.special import log_softmax, softmax
 from scipy.stats import entropy
 
-from service.app import create_app
 from service.model import BUNDLED, Model
 from service.registry import load_registry
 from service.sampling import final_distribution
-from service.settings import Settings
 
 PROMPT = "KING. Good morrow, my lords. What news from the north, and"
 
@@ -41,24 +39,13 @@ def model() -> Model:
 
 @pytest.fixture
 def client(registry: Path) -> Iterator[TestClient]:
-    settings = Settings(
-        policies=registry, keys=ROOT / "deploy" / "demo-keys.yaml", reload_poll_seconds=0
-    )
-    with TestClient(create_app(settings)) as test_client:
+    with in_process(registry) as test_client:
         wait_ready(test_client)
         yield test_client
 
 
 def go(client: TestClient, body: dict[str, Any], who: str = "prompt-book-app") -> Any:
     return client.post("/v1/continue", json=body, headers=auth(who))
-
-
-def assert_problem(response: Any, status: int, needle: str = "") -> dict[str, Any]:
-    assert response.status_code == status, response.text
-    assert response.headers["content-type"].startswith("application/problem+json")
-    problem: dict[str, Any] = response.json()
-    assert problem["status"] == status and needle in problem["detail"], problem
-    return problem
 
 
 def test_answer_has_the_contract_fields(client: TestClient) -> None:
@@ -202,13 +189,7 @@ def test_broken_model_folder_is_not_ready_but_picks_still_work(
     broken = tmp_path / "model"
     broken.mkdir()
     (broken / "model.json").write_text("{}")
-    settings = Settings(
-        policies=registry,
-        keys=ROOT / "deploy" / "demo-keys.yaml",
-        model=broken,
-        reload_poll_seconds=0,
-    )
-    with TestClient(create_app(settings)) as client:
+    with in_process(registry, model=broken) as client:
         deadline = time.monotonic() + 10
         while "loading" in client.get("/readyz").text and time.monotonic() < deadline:
             time.sleep(0.05)

@@ -12,7 +12,7 @@ from typing import Any
 
 import numpy as np
 import pytest
-from conftest import ROOT, auth
+from conftest import assert_problem, auth, in_process
 from fastapi.testclient import TestClient
 
 from service.app import create_app
@@ -27,26 +27,9 @@ def npy_bytes(array: np.ndarray) -> bytes:
 
 @pytest.fixture
 def client(registry: Path) -> Iterator[TestClient]:
-    settings = Settings(
-        policies=registry,
-        keys=ROOT / "deploy" / "demo-keys.yaml",
-        max_rows=4,
-        max_vocab=1000,
-        max_body_bytes=200_000,
-        reload_poll_seconds=0,
-    )
-    with TestClient(create_app(settings)) as test_client:
+    limits = {"max_rows": 4, "max_vocab": 1000, "max_body_bytes": 200_000}
+    with in_process(registry, **limits) as test_client:
         yield test_client
-
-
-def assert_problem(response: Any, status: int, needle: str = "") -> dict[str, Any]:
-    assert response.status_code == status, response.text
-    assert response.headers["content-type"].startswith("application/problem+json")
-    body: dict[str, Any] = response.json()
-    assert {"type", "title", "status", "detail"} <= set(body)
-    assert body["status"] == status and body["type"].startswith("urn:keepset:problem:")
-    assert needle in body["detail"], body
-    return body
 
 
 def pick_json(client: TestClient, body: Any, who: str = "usher-desk") -> Any:

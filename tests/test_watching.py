@@ -11,14 +11,12 @@ from pathlib import Path
 import httpx
 import numpy as np
 import pytest
-from conftest import ROOT, Server, auth
+from conftest import Server, auth, in_process, start_server, stop_server
 from fastapi.testclient import TestClient
 from prometheus_client import REGISTRY
 from scipy.stats import chi2, chisquare
 
-from service.app import create_app
 from service.ratio import chi2_sf, sample_ratio
-from service.settings import Settings
 from service.watch import CollapseWatch
 
 # One dominant logit: prompt-book's chain (top_k 200, typical 0.95) keeps exactly one token.
@@ -93,14 +91,7 @@ def test_sample_ratio_matches_scipy_chisquare() -> None:
 
 @pytest.fixture
 def client(registry: Path) -> Iterator[TestClient]:
-    settings = Settings(
-        policies=registry,
-        keys=ROOT / "deploy" / "demo-keys.yaml",
-        reload_poll_seconds=0,
-        collapse_window=40,
-        collapse_min_steps=20,
-    )
-    with TestClient(create_app(settings)) as test_client:
+    with in_process(registry, collapse_window=40, collapse_min_steps=20) as test_client:
         yield test_client
 
 
@@ -169,15 +160,13 @@ def scrape_value(server: Server, name: str, **labels: str) -> float:
 
 
 def test_watch_and_split_agree_across_two_workers(registry: Path) -> None:
-    from conftest import start_server, stop_server
-
     server = start_server(
         registry, workers=2, KEEPSET_COLLAPSE_WINDOW="20", KEEPSET_COLLAPSE_MIN_STEPS="10"
     )
     try:
         url = f"{server.base_url}/v1/pick"
         # New connections each time, so both workers take requests; every one collapses.
-        for i in range(40):
+        for _ in range(40):
             body = {"logits": [COLLAPSING] * 4, "routing_key": "scene-1"}
             r = httpx.post(url, json=body, headers=auth("prompt-book-app"), timeout=10)
             assert r.status_code == 200 and r.json()["version"] == 3, r.text

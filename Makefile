@@ -4,7 +4,7 @@ VENV := .venv
 BIN := $(VENV)/bin
 STAMP := $(VENV)/.installed
 
-.PHONY: run demo test lint bench clean
+.PHONY: run demo test lint prometheus bench clean
 
 $(STAMP): pyproject.toml
 	$(PY) -m venv $(VENV)
@@ -23,7 +23,12 @@ lint: $(STAMP)
 	$(BIN)/ruff format --check service tests loadtest
 	$(BIN)/mypy
 
-test: lint
+# The alert-rule tests need promtool and the live monitoring test a real Prometheus: Debian's
+# prometheus package (the script does nothing when both are already installed).
+prometheus:
+	bash deploy/prometheus/install-prometheus.sh
+
+test: lint prometheus
 	$(BIN)/python -m pytest -q
 
 bench: $(STAMP)

@@ -113,6 +113,8 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     if not snapshot.valid:
         log.warning("registry loaded with problems: %s", snapshot.problem_lines())
     metrics.set_arm_weights(_arm_shares(snapshot))
+    for outcome in ("loaded", "kept_last_good"):  # present at 0, so increase() sees the first
+        metrics.REGISTRY_RELOADS.labels(outcome)
 
     @contextlib.asynccontextmanager
     async def lifespan(app: FastAPI) -> AsyncIterator[None]:

@@ -40,13 +40,16 @@ class _Lazy:
         return float(self.raw[token]) / self.temp
 
     def working(self, ids: IntArray) -> F64:
+        """Working logits of ``ids`` (ascending): raw / temperature, edited ids overwritten."""
         w = self.raw[ids].astype(np.float64)
         if self.temp != 1.0:
             w /= self.temp
         if self.edits:
-            for at, token in enumerate(ids.tolist()):
-                if token in self.edits:
-                    w[at] = self.edits[token]
+            edited = self.edited_ids()
+            values = np.fromiter(self.edits.values(), dtype=np.float64, count=len(self.edits))
+            at = np.minimum(np.searchsorted(ids, edited), max(ids.size - 1, 0))
+            present = ids[at] == edited if ids.size else np.zeros(edited.size, dtype=bool)
+            w[at[present]] = values[present]
         return w
 
     def edited_ids(self) -> IntArray:

@@ -139,74 +139,89 @@ def start_server(registry: Path, name: str) -> tuple[subprocess.Popen[bytes], in
     return proc, port
 
 
-def over_http(port: int, name: str, budget: int, repeats: int) -> list[float]:
-    conn = http.client.HTTPConnection("127.0.0.1", port, timeout=60)
+def one_http_request(conn: http.client.HTTPConnection, name: str, budget: int, seed: int) -> float:
     headers = {"Authorization": f"Bearer {KEY}", "Content-Type": "application/json"}
-    times = []
-    for i in range(repeats + 1):  # the first request warms the server up and is not counted
-        body = json.dumps({"prompt": PROMPT, "seed": i, "budget": budget})
-        started = time.perf_counter()
-        conn.request("POST", "/v1/continue", body=body, headers=headers)
-        response = conn.getresponse()
-        answer = json.loads(response.read())
-        elapsed = time.perf_counter() - started
-        assert response.status == 200, answer
-        assert answer["policy"] == name and len(answer["tokens"]) == budget, answer
-        if i:
-            times.append(elapsed)
-    conn.close()
-    return times
+    body = json.dumps({"prompt": PROMPT, "seed": seed, "budget": budget})
+    started = time.perf_counter()
+    conn.request("POST", "/v1/continue", body=body, headers=headers)
+    response = conn.getresponse()
+    answer = json.loads(response.read())
+    elapsed = time.perf_counter() - started
+    assert response.status == 200, answer
+    assert answer["policy"] == name and len(answer["tokens"]) == budget, answer
+    return elapsed
 
 
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--budget", type=int, default=128)
-    parser.add_argument("--repeats", type=int, default=7)
+    parser.add_argument("--repeats", type=int, default=9)
     parser.add_argument("--out", type=Path, default=ROOT / "loadtest/results/continue.json")
     args = parser.parse_args()
     budget, repeats = args.budget, args.repeats
     assert load_keyring(ROOT / "deploy" / "demo-keys.yaml").identify(KEY) is not None
 
     model = Model(BUNDLED, threads=1)
-    bare_loop(model, budget)  # warm-up
-    bare = statistics.median(bare_loop(model, budget) for _ in range(repeats))
-    results: dict[str, Any] = {
-        "budget": budget,
-        "repeats": repeats,
-        "bare_tokens_per_s": budget / bare,
-        "policies": {},
-    }
+    # This machine's speed drifts by tens of percent over minutes, so every repeat times the
+    # bare loop, the in-process run and the HTTP request back to back, and the ratios are
+    # taken per repeat before the median.
+    samples: dict[str, dict[str, list[float]]] = {n: {} for n in CHAINS}
     with tempfile.TemporaryDirectory(prefix="keepset-bench-") as tmp:
-        registry = Path(tmp) / "policies"
-        bench_registry(registry, budget)
-        for name in CHAINS:
-            local = statistics.median(
-                in_process(model, name, budget, seed)[0] for seed in range(repeats)
-            )
-            alone = policy_alone(model, name, budget, repeats)
-            proc, port = start_server(registry, name)
-            try:
-                http_times = over_http(port, name, budget, repeats)
-            finally:
+        servers: dict[str, tuple[subprocess.Popen[bytes], int]] = {}
+        try:
+            for name in CHAINS:
+                registry = Path(tmp) / name / "policies"
+                bench_registry(registry, budget)
+                servers[name] = start_server(registry, name)
+            conns = {
+                name: http.client.HTTPConnection("127.0.0.1", port, timeout=60)
+                for name, (_, port) in servers.items()
+            }
+            for name in CHAINS:  # warm-up: first model calls, first request per server
+                bare_loop(model, budget)
+                in_process(model, name, budget, 0)
+                one_http_request(conns[name], name, budget, 0)
+            for repeat in range(repeats):
+                for name in CHAINS:
+                    bare = bare_loop(model, budget)
+                    local = in_process(model, name, budget, repeat)[0]
+                    served = one_http_request(conns[name], name, budget, repeat)
+                    got = samples[name]
+                    for key, value in (
+                        ("bare", bare),
+                        ("local", local),
+                        ("http", served),
+                        ("local_ratio", local / bare),
+                        ("http_ratio", served / bare),
+                    ):
+                        got.setdefault(key, []).append(value)
+            for conn in conns.values():
+                conn.close()
+        finally:
+            for proc, _ in servers.values():
                 proc.terminate()
                 proc.wait(timeout=15)
-            served = statistics.median(http_times)
-            results["policies"][name] = {
-                "policy_ms_per_token": alone * 1e3,
-                "in_process_tokens_per_s": budget / local,
-                "http_tokens_per_s": budget / served,
-                "http_slower_than_bare": served / bare - 1,
-                "in_process_slower_than_bare": local / bare - 1,
-            }
-    print(f"budget {budget} tokens, median of {repeats}; bare loop {budget / bare:.0f} tokens/s")
+    results: dict[str, Any] = {"budget": budget, "repeats": repeats, "policies": {}}
+    for name, got in samples.items():
+        median = {key: statistics.median(values) for key, values in got.items()}
+        results["policies"][name] = {
+            "policy_ms_per_token": policy_alone(model, name, budget, repeats) * 1e3,
+            "bare_tokens_per_s": budget / median["bare"],
+            "in_process_tokens_per_s": budget / median["local"],
+            "http_tokens_per_s": budget / median["http"],
+            "in_process_slower_than_bare": median["local_ratio"] - 1,
+            "http_slower_than_bare": median["http_ratio"] - 1,
+        }
+    print(f"budget {budget} tokens, one client, median of {repeats} interleaved repeats")
     print(
-        f"{'policy':<14}{'policy ms/token':>16}{'in-process tok/s':>18}{'HTTP tok/s':>12}"
-        f"{'HTTP vs bare':>14}"
+        f"{'policy':<14}{'bare tok/s':>11}{'in-process':>11}{'HTTP':>7}"
+        f"{'in-process vs bare':>20}{'HTTP vs bare':>14}{'policy ms/token':>17}"
     )
     for name, row in results["policies"].items():
         print(
-            f"{name:<14}{row['policy_ms_per_token']:>16.3f}{row['in_process_tokens_per_s']:>18.0f}"
-            f"{row['http_tokens_per_s']:>12.0f}{row['http_slower_than_bare'] * 100:>13.1f}%"
+            f"{name:<14}{row['bare_tokens_per_s']:>11.0f}{row['in_process_tokens_per_s']:>11.0f}"
+            f"{row['http_tokens_per_s']:>7.0f}{row['in_process_slower_than_bare'] * 100:>19.1f}%"
+            f"{row['http_slower_than_bare'] * 100:>13.1f}%{row['policy_ms_per_token']:>17.3f}"
         )
     args.out.parent.mkdir(parents=True, exist_ok=True)
     args.out.write_text(json.dumps(results, indent=2) + "\n")

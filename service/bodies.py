@@ -1,0 +1,192 @@
+"""Request bodies of the HTTP API and how they are read: ``/v1/pick`` as JSON or a raw ``.npy``
+body (with query parameters), ``/v1/continue`` as JSON, and the limits on rows and vocabulary.
+Every way a body can be wrong becomes a problem document with its documented status; nothing
+here knows about routes, policies or metrics.
+"""
+
+from __future__ import annotations
+
+import base64
+import binascii
+import json
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+import orjson
+from fastapi import Request
+from pydantic import BaseModel, ConfigDict, Field, StrictInt, ValidationError
+
+from service.guard import read_body
+from service.live import Live
+from service.npy import NpyError, read_npy
+from service.problems import Problem
+from service.sampling import InputError, as_batch
+
+NPY_MEDIA = "application/x-npy"
+
+
+class PickBody(BaseModel):
+    """JSON body of ``POST /v1/pick``."""
+
+    model_config = ConfigDict(extra="forbid")
+
+    # Checked by numpy's conversion, not field by field: per-number validation of a 128k row
+    # would cost more than the sampling.
+    logits: Any = None
+    logits_npy: str | None = Field(default=None, description="base64 of .npy bytes")
+    history: list[list[StrictInt]] | None = None
+    seed: StrictInt | None = Field(default=None, ge=0, lt=2**64)
+    routing_key: str | None = Field(default=None, max_length=512)
+    adjust: dict[str, float] = {}
+
+
+class ContinueBody(BaseModel):
+    """JSON body of ``POST /v1/continue``."""
+
+    model_config = ConfigDict(extra="forbid")
+
+    prompt: str = Field(max_length=1_000_000)
+    budget: StrictInt | None = Field(
+        default=None, ge=1, description="tokens to generate at most; capped by the policy's"
+    )
+    seed: StrictInt | None = Field(default=None, ge=0, lt=2**64)
+    routing_key: str | None = Field(default=None, max_length=512)
+    adjust: dict[str, float] = {}
+    stream: bool = False
+
+
+@dataclass
+class PickInput:
+    logits: np.ndarray
+    history: list[list[int]] | None
+    seed: int | None
+    routing_key: str | None
+    adjust: dict[str, float]
+
+
+async def pick_input(request: Request, live: Live) -> PickInput:
+    media = request.headers.get("content-type", "").split(";")[0].strip().lower()
+    if media not in ("application/json", NPY_MEDIA):
+        raise Problem(
+            415,
+            "media-type",
+            f"send application/json or {NPY_MEDIA}, not {media or 'no Content-Type'}",
+        )
+    body = await read_body(request, live)
+    if media == NPY_MEDIA:
+        return _npy_input(body, dict(request.query_params))
+    try:
+        data = orjson.loads(body)
+    except orjson.JSONDecodeError:
+        # orjson is strict JSON; the standard parser also takes NaN and Infinity, which many
+        # JSON encoders emit for float rows.
+        try:
+            data = json.loads(body)
+        except (json.JSONDecodeError, UnicodeDecodeError) as exc:
+            raise Problem(400, "malformed-json", f"the body is not JSON: {exc}") from None
+    try:
+        parsed = PickBody.model_validate(data)
+    except ValidationError as exc:
+        raise Problem(400, "malformed", validation_text(exc)) from None
+    if (parsed.logits is None) == (parsed.logits_npy is None):
+        raise Problem(400, "malformed", "send exactly one of 'logits' and 'logits_npy'")
+    if parsed.logits_npy is not None:
+        try:
+            raw = base64.b64decode(parsed.logits_npy, validate=True)
+        except (binascii.Error, ValueError):
+            raise Problem(400, "malformed", "logits_npy is not valid base64") from None
+        logits = _npy(raw)
+    else:
+        logits = _json_logits(parsed.logits)
+    return PickInput(logits, parsed.history, parsed.seed, parsed.routing_key, parsed.adjust)
+
+
+def validation_text(exc: ValidationError) -> str:
+    return "; ".join(
+        f"{'.'.join(str(p) for p in e['loc']) or 'body'}: {e['msg']}" for e in exc.errors()[:5]
+    )
+
+
+def _json_logits(values: Any) -> np.ndarray:
+    # JSON has no NaN or infinity; null stands for a missing (invalid) entry, like NaN.
+    try:
+        return as_batch(np.array(values, dtype=np.float32))
+    except (ValueError, TypeError):
+        raise Problem(
+            400, "malformed", "logits must be a list of numbers or of equal-length rows"
+        ) from None
+
+
+def _npy(data: bytes) -> np.ndarray:
+    try:
+        return read_npy(data)
+    except NpyError as exc:
+        status = 415 if exc.kind == "dtype" else 400
+        raise Problem(status, f"npy-{exc.kind}", str(exc)) from None
+
+
+def _npy_input(body: bytes, query: dict[str, str]) -> PickInput:
+    logits = _npy(body)
+    seed = query.pop("seed", None)
+    routing_key = query.pop("routing_key", None)
+    history_text = query.pop("history", None)
+    try:
+        seed_value = int(seed) if seed is not None else None
+        history = None
+        if history_text is not None:
+            history = [
+                [int(t) for t in row.split(",") if t.strip()] for row in history_text.split(";")
+            ]
+        adjust = {k: float(v) for k, v in query.items()}
+    except ValueError as exc:
+        raise Problem(400, "malformed-query", f"bad query parameter: {exc}") from None
+    return PickInput(logits, history, seed_value, routing_key, adjust)
+
+
+def check_limits(logits: np.ndarray, live: Live) -> np.ndarray:
+    rows = as_batch(logits) if logits.ndim != 2 else logits
+    b, v = rows.shape
+    if b > live.settings.max_rows:
+        raise Problem(
+            413, "too-many-rows", f"{b} rows is over KEEPSET_MAX_ROWS={live.settings.max_rows}"
+        )
+    if v > live.settings.max_vocab:
+        raise Problem(
+            413,
+            "vocab-too-large",
+            f"vocabulary {v} is over KEEPSET_MAX_VOCAB={live.settings.max_vocab}",
+        )
+    return rows
+
+
+_INPUT_STATUS = {
+    "shape": 400,
+    "history": 400,
+    "seed": 400,
+    "dtype": 415,
+    "no_finite": 422,
+    "token_range": 422,
+}
+
+
+def input_problem(exc: InputError) -> Problem:
+    return Problem(
+        _INPUT_STATUS.get(exc.reason, 400), f"input-{exc.reason.replace('_', '-')}", str(exc)
+    )
+
+
+async def continue_input(request: Request, live: Live) -> ContinueBody:
+    media = request.headers.get("content-type", "").split(";")[0].strip().lower()
+    if media != "application/json":
+        raise Problem(415, "media-type", f"send application/json, not {media or 'no Content-Type'}")
+    body = await read_body(request, live)
+    try:
+        return ContinueBody.model_validate_json(body)
+    except ValidationError as exc:
+        kind = "malformed-json" if _is_json_error(exc) else "malformed"
+        raise Problem(400, kind, validation_text(exc)) from None
+
+
+def _is_json_error(exc: ValidationError) -> bool:
+    return any(e["type"] == "json_invalid" for e in exc.errors())

@@ -1,0 +1,96 @@
+"""What a running keepset holds and how it changes while it runs: the registry snapshot (replaced
+whole by a reload from the admin endpoint, SIGHUP or a file change, so a request sees the old
+registry or the new one, never a mix), the keys, the model (loaded in the background, with the
+reason when it cannot be), the collapse watch and the in-flight count.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import logging
+import random
+from dataclasses import dataclass, field
+from typing import Any
+
+from starlette.concurrency import run_in_threadpool
+
+from service import metrics
+from service.keys import KeyRing
+from service.model import Model, ModelError
+from service.registry import RegistrySnapshot, reload_registry
+from service.settings import Settings
+from service.watch import CollapseWatch
+
+log = logging.getLogger("keepset")
+
+
+@dataclass
+class Live:
+    """What the running app serves; ``snapshot`` is replaced whole on reload."""
+
+    settings: Settings
+    snapshot: RegistrySnapshot
+    keys: KeyRing
+    draining: bool = False
+    in_flight: int = 0
+    last_reload: dict[str, Any] = field(default_factory=dict)
+    rng: random.Random = field(default_factory=random.Random)
+    model: Model | None = None
+    model_problem: str | None = "the model is still loading"
+    watch: CollapseWatch = field(default_factory=CollapseWatch)
+
+
+def reload_now(live: Live, trigger: str) -> dict[str, Any]:
+    snapshot, report = reload_registry(live.snapshot, live.settings.policies)
+    live.snapshot = snapshot
+    metrics.set_arm_weights(arm_shares(snapshot))
+    outcome = "loaded" if report.ok else "kept_last_good"
+    metrics.REGISTRY_RELOADS.labels(outcome).inc()
+    result = {"outcome": outcome, "trigger": trigger, **report.as_dict()}
+    live.last_reload = result
+    if report.ok:
+        log.info("registry reloaded (%s): %d files", trigger, len(report.loaded))
+    else:
+        log.warning(
+            "registry reload refused (%s); keeping the last good: %s", trigger, report.refused
+        )
+    return result
+
+
+async def load_model(live: Live) -> None:
+    """Load the model off the event loop; /v1/pick serves meanwhile, readiness waits for it."""
+    folder = live.settings.model
+    try:
+        live.model = await run_in_threadpool(Model, folder, threads=live.settings.model_threads)
+    except ModelError as exc:
+        live.model_problem = f"model not loaded: {exc}"
+        log.error("%s; /v1/continue answers 503 until it is fixed and keepset restarted", exc)
+    else:
+        live.model_problem = None
+        log.info("model %s loaded from %s", live.model.info.name, folder)
+
+
+async def poll_registry(live: Live) -> None:
+    interval = live.settings.reload_poll_seconds
+    if interval <= 0:
+        return
+    seen = live.snapshot.fingerprint
+    while True:
+        await asyncio.sleep(interval)
+        try:
+            current = await run_in_threadpool(
+                RegistrySnapshot.fingerprint_of, live.settings.policies
+            )
+        except OSError:
+            continue
+        if current != seen:
+            seen = current
+            reload_now(live, "file-change")
+
+
+def arm_shares(snapshot: RegistrySnapshot) -> dict[tuple[str, str], float]:
+    return {
+        (client, arm.public_label(i)): arm.weight / route.total_weight
+        for client, route in snapshot.routes.items()
+        for i, arm in enumerate(route.arms)
+    }

@@ -82,18 +82,24 @@ def cases(draw: Any) -> tuple[list[dict[str, Any]], int, np.ndarray, list[list[i
 def _compare(
     stages: list[dict[str, Any]], min_keep: int, x: np.ndarray, history: list[list[int]]
 ) -> int:
+    """Each row against the reference, decided both within its batch and alone (a single row
+    takes the lean one-row path of ``sampling.row``, a batch the batched rules)."""
     chain = parse_chain(stages, min_keep=min_keep)
     got = final_distribution(chain, x, history=history)
     out = pick(chain, x, seed=3, history=history)
     for b in range(x.shape[0]):
         want, reason, ambiguous = reference_row(stages, min_keep, x[b], history[b])
-        assert out.fallback[b] == reason
+        alone = final_distribution(chain, x[b], history=[history[b]])[0]
+        alone_out = pick(chain, x[b], seed=3, history=[history[b]], first_stream=b)
+        assert out.fallback[b] == reason and alone_out.fallback[0] == reason
         if ambiguous:
             ROWS_CHECKED["ambiguous"] += 1
             continue
         assert want[out.tokens[b]] > 0, "drawn token outside the reference kept set"
-        np.testing.assert_array_equal(np.flatnonzero(got[b]), np.flatnonzero(want))
-        np.testing.assert_allclose(got[b], want, atol=1e-6, rtol=0)
+        assert want[alone_out.tokens[0]] > 0, "drawn token outside the reference kept set"
+        for dist in (got[b], alone):
+            np.testing.assert_array_equal(np.flatnonzero(dist), np.flatnonzero(want))
+            np.testing.assert_allclose(dist, want, atol=1e-6, rtol=0)
     return x.shape[0]
 
 

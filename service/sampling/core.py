@@ -22,6 +22,7 @@ from numpy.typing import NDArray
 from service.sampling.batch import RULES, Candidates, compact, probabilities
 from service.sampling.chain import TRUNCATION_METHODS, Chain
 from service.sampling.full import narrow_row
+from service.sampling.row import decide_row
 
 # Fresh seeds stay below 2**53 so that any JSON client can echo them back exactly.
 _FRESH_SEED_BITS = 53
@@ -92,6 +93,10 @@ def pick(
     _check_seed(seed)
     histories = _histories(history, rows.shape)
     _check_token_ids(chain, rows.shape[1])
+    if rows.shape[0] == 1:
+        single = _pick_single(chain, rows, histories[0], seed, first_stream)
+        if single is not None:
+            return single
     rows, groups, log_norm, entropy = _resolve(chain, rows, histories, threads)
     uniforms = _uniforms(seed, first_stream, rows.shape[0])
     n = rows.shape[0]
@@ -116,6 +121,38 @@ def pick(
                 fallback[b] = g.reason
     logprob = rows[np.arange(n), tokens].astype(np.float64) - log_norm
     return PickResult(tokens, kept, kept_mass, entropy, prob, logprob, fallback, seed)
+
+
+def _pick_single(
+    chain: Chain, rows: F32, history: list[int], seed: int, first_stream: int
+) -> PickResult | None:
+    """One finite row decided by its own chain, on the lean path of ``row``; None sends the
+    row to the general path (invalid entries, nothing left, fallbacks)."""
+    top = rows.max(axis=1)
+    if not math.isfinite(float(top[0])):
+        return None
+    decided = decide_row(chain, rows[0], history)
+    if decided is None:
+        return None
+    ids, probs = decided
+    log_norm, entropy = _raw_diagnostics(rows, top)
+    at = int(_inverse_cdf(probs[None, :], _uniforms(seed, first_stream, 1))[0])
+    token = int(ids[at])
+    raw = rows[0]
+    if ids.size == raw.size:
+        kept_mass = 1.0  # everything kept: the whole mass, by definition
+    else:
+        kept_mass = float(np.exp(raw[ids].astype(np.float64) - log_norm[0]).sum())
+    return PickResult(
+        tokens=np.array([token], np.int64),
+        kept=np.array([ids.size], np.int64),
+        kept_mass=np.array([kept_mass]),
+        entropy=entropy,
+        prob=np.array([probs[at]]),
+        logprob=np.array([float(raw[token]) - log_norm[0]]),
+        fallback=[None],
+        seed=seed,
+    )
 
 
 def _inverse_cdf(probs: F64, uniforms: F64) -> IntArray:
@@ -151,8 +188,13 @@ def final_distribution(
     rows = as_batch(logits)
     histories = _histories(history, rows.shape)
     _check_token_ids(chain, rows.shape[1])
-    rows, groups, _, _ = _resolve(chain, rows, histories, threads=1)
     out = np.zeros(rows.shape, np.float64)
+    if rows.shape[0] == 1 and math.isfinite(float(rows.max())):
+        decided = decide_row(chain, rows[0], histories[0])
+        if decided is not None:  # else the general path applies the fallback
+            out[0, decided[0]] = decided[1]
+            return out
+    rows, groups, _, _ = _resolve(chain, rows, histories, threads=1)
     for g in groups:
         alive = g.kept
         r = np.broadcast_to(g.rows[:, None], g.ids.shape)

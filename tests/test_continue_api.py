@@ -104,11 +104,18 @@ def test_budget_is_capped_by_the_policy(client: TestClient) -> None:
     assert short["budget"] == 3 and len(short["tokens"]) <= 3
 
 
-def test_adjust_within_range_and_refused_outside(client: TestClient) -> None:
-    ok = go(client, {"prompt": PROMPT, "budget": 4, "adjust": {"temperature": 0.6}})
-    assert ok.status_code == 200, ok.text
-    assert_problem(go(client, {"prompt": PROMPT, "adjust": {"temperature": 3.0}}), 422, "0.5")
-    assert_problem(go(client, {"prompt": PROMPT, "adjust": {"top_p": 0.5}}), 422)
+def test_adjust_within_range_refused_or_clamped_outside(client: TestClient) -> None:
+    # Sticky keys pick the arm: scene-1 lands on prompt-book@3 (rejects out-of-range values),
+    # scene-9 on @4 (clamps them).
+    reject = {"prompt": PROMPT, "budget": 4, "routing_key": "scene-1"}
+    clamp = {"prompt": PROMPT, "budget": 4, "routing_key": "scene-9"}
+    ok = go(client, {**reject, "adjust": {"temperature": 0.6}})
+    assert ok.status_code == 200 and ok.json()["version"] == 3, ok.text
+    assert_problem(go(client, {**reject, "adjust": {"temperature": 3.0}}), 422, "0.5")
+    assert_problem(go(client, {**reject, "adjust": {"top_p": 0.5}}), 422)
+    clamped = go(client, {**clamp, "adjust": {"temperature": 3.0}})
+    assert clamped.status_code == 200 and clamped.json()["version"] == 4, clamped.text
+    assert clamped.json()["clamped"] == ["temperature"]
 
 
 def test_streaming_sends_one_step_event_per_token(client: TestClient) -> None:

@@ -12,6 +12,7 @@ import asyncio
 import contextlib
 import logging
 import signal
+import threading
 import uuid
 from collections.abc import AsyncIterator
 from functools import partial
@@ -36,7 +37,7 @@ from service.keys import Identity, load_keyring
 from service.live import Live, arm_shares, load_model, poll_registry, reload_now
 from service.model import PromptError, PromptTooLong
 from service.problems import Problem
-from service.prompting import PromptRun, StepRecord
+from service.prompting import Cancelled, PromptRun, StepRecord
 from service.registry import load_registry
 from service.sampling import InputError, pick
 from service.serving import (
@@ -52,6 +53,9 @@ from service.watch import CollapseWatch
 
 log = logging.getLogger("keepset")
 
+# Status recorded for a continuation whose client went away before the answer (no standard
+# code exists; 499 is the one proxies log for it).
+CLIENT_GONE = 499
 # Picks up to this many logits run on the event loop (a few ms at most); larger ones in a thread.
 _INLINE_ELEMENTS = 1 << 20
 
@@ -209,6 +213,7 @@ def _add_routes(app: FastAPI, live: Live) -> None:
                     seed=body.seed,
                     stop=policy.stop,
                     keep_logits=bool(route.shadow),
+                    cancel=threading.Event(),
                 )
             )
         except PromptTooLong as exc:
@@ -237,10 +242,16 @@ def _add_routes(app: FastAPI, live: Live) -> None:
                 headers={"Cache-Control": "no-store", "X-Accel-Buffering": "no"},
                 background=after,
             )
+        watcher = asyncio.create_task(_cancel_on_disconnect(request, run))
         try:
             records = await run_in_threadpool(list, run)
+        except Cancelled:
+            # Nobody is listening; the status is for the request metrics and the access log.
+            return Response(status_code=CLIENT_GONE, background=after)
         except (InputError, ValueError) as exc:  # a model that emits no finite logit
             raise Problem(422, "model-output", str(exc)) from None
+        finally:
+            watcher.cancel()
         return JSONResponse(
             {
                 **head,
@@ -315,6 +326,15 @@ def _add_routes(app: FastAPI, live: Live) -> None:
                 media_type=problems.MEDIA_TYPE,
             )
         return JSONResponse({"status": "ready", "policies": live.snapshot.policy_count()})
+
+
+async def _cancel_on_disconnect(request: Request, run: PromptRun) -> None:
+    """Stop a plain (unstreamed) continuation at its next step when the client goes away; the
+    body has been read, so the next ASGI message can only be the disconnect."""
+    while (await request.receive())["type"] != "http.disconnect":
+        pass
+    if run.cancel is not None:
+        run.cancel.set()
 
 
 def _sse(event: str, data: dict[str, Any]) -> bytes:

@@ -10,6 +10,7 @@ metrics imports live here; the HTTP layer streams or collects what :class:`Promp
 from __future__ import annotations
 
 import secrets
+import threading
 from collections.abc import Sequence
 from dataclasses import asdict, dataclass
 
@@ -20,6 +21,10 @@ from service.model import Continuation, Model
 from service.sampling import Chain, PickResult, pick
 
 FRESH_SEED_BITS = 53  # fresh seeds stay exact in JSON numbers, like the pick path's
+
+
+class Cancelled(Exception):
+    """The caller asked the run to stop (its client went away); no further step is taken."""
 
 
 @dataclass(frozen=True)
@@ -43,10 +48,11 @@ class PromptRun:
     """Iterator of :class:`StepRecord` for one continuation under one chain.
 
     The model runs only while the caller iterates, so a caller that stops iterating (a client
-    that went away) stops the work. After the last step, :attr:`finish` is ``"budget"``,
-    ``"end"`` or ``"stop"``; :attr:`records` holds every step yielded so far, and
-    :attr:`logits` the raw logits rows of those steps when ``keep_logits`` was asked for (the
-    shadow policies are evaluated on them afterwards).
+    that went away) stops the work; a caller that iterates in another thread can set
+    ``cancel`` instead, and the next step raises :class:`Cancelled`. After the last step,
+    :attr:`finish` is ``"budget"``, ``"end"`` or ``"stop"``; :attr:`records` holds every step
+    yielded so far, and :attr:`logits` the raw logits rows of those steps when ``keep_logits``
+    was asked for (the shadow policies are evaluated on them afterwards).
     """
 
     def __init__(
@@ -59,8 +65,10 @@ class PromptRun:
         seed: int | None = None,
         stop: Sequence[str] = (),
         keep_logits: bool = False,
+        cancel: threading.Event | None = None,
     ) -> None:
         self.seed = secrets.randbits(FRESH_SEED_BITS) if seed is None else seed
+        self.cancel = cancel
         self.chain = chain
         self.records: list[StepRecord] = []
         self.histories: list[list[int]] = []
@@ -72,6 +80,8 @@ class PromptRun:
         self._continuation: Continuation = model.generate(prompt, budget, self._step, stop=stop)
 
     def _step(self, row: npt.NDArray[np.float32], history: list[int]) -> int:
+        if self.cancel is not None and self.cancel.is_set():
+            raise Cancelled
         step = len(self._picks)
         history = history[self._skip :]
         out = pick(self.chain, row, self.seed, [history], first_stream=step)

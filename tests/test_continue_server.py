@@ -113,6 +113,26 @@ def test_a_client_that_goes_away_stops_the_generation(long_take_server: Server) 
     assert 3 <= counted < 400, counted
 
 
+def test_a_plain_request_whose_client_goes_away_stops_too(long_take_server: Server) -> None:
+    url = f"{long_take_server.base_url}/v1/continue"
+    before = rows_total(long_take_server, "long-take")
+    started = time.monotonic()
+    with pytest.raises(httpx.ReadTimeout):  # the client gives up and closes the connection
+        httpx.post(url, json={"prompt": "Alarum within."}, headers=auth("usher-desk"), timeout=0.5)
+    deadline = started + 10
+    counted = -1.0
+    while time.monotonic() < deadline:
+        time.sleep(0.5)
+        now = rows_total(long_take_server, "long-take") - before
+        if now == counted and now > 0:
+            break
+        counted = now
+    # About half a second of work, not the 4000-token budget (about ten seconds).
+    assert 1 <= counted < 1000, counted
+    text = httpx.get(f"{long_take_server.base_url}/metrics", timeout=5).text
+    assert 'code="499",endpoint="/v1/continue"' in text
+
+
 def test_broken_model_folder_keeps_readiness_at_503(registry: Path, tmp_path: Path) -> None:
     empty = tmp_path / "no-model-here"
     empty.mkdir()

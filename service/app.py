@@ -34,7 +34,7 @@ from service.bodies import (
 )
 from service.guard import Guard
 from service.keys import Identity, load_keyring
-from service.live import Live, arm_shares, load_model, poll_registry, reload_now
+from service.live import Live, arm_shares, load_model, poll_registry, reload_now, settled_model
 from service.model import PromptError, PromptTooLong
 from service.problems import Problem
 from service.prompting import Cancelled, PromptRun, StepRecord
@@ -56,6 +56,8 @@ log = logging.getLogger("keepset")
 # Status recorded for a continuation whose client went away before the answer (no standard
 # code exists; 499 is the one proxies log for it).
 CLIENT_GONE = 499
+# A prompt request that reaches a worker whose model is still loading waits this long for it.
+MODEL_WAIT_SECONDS = 30.0
 # Picks up to this many logits run on the event loop (a few ms at most); larger ones in a thread.
 _INLINE_ELEMENTS = 1 << 20
 
@@ -195,7 +197,7 @@ def _add_routes(app: FastAPI, live: Live) -> None:
         snapshot = live.snapshot
         route = route_of(snapshot, client)
         body = await continue_input(request, live)
-        model = live.model
+        model = await settled_model(live, MODEL_WAIT_SECONDS)
         if model is None:
             raise Problem(503, "model-not-ready", live.model_problem or "the model is not loaded")
         served = serve(snapshot, client, route, body.routing_key, body.adjust, live)

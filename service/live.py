@@ -7,6 +7,7 @@ reason when it cannot be), the collapse watch and the in-flight count.
 from __future__ import annotations
 
 import asyncio
+import contextlib
 import logging
 import random
 from dataclasses import dataclass, field
@@ -37,6 +38,8 @@ class Live:
     rng: random.Random = field(default_factory=random.Random)
     model: Model | None = None
     model_problem: str | None = "the model is still loading"
+    # Set once loading has ended either way; prompt requests that arrive earlier wait for it.
+    model_settled: asyncio.Event = field(default_factory=asyncio.Event)
     watch: CollapseWatch = field(default_factory=CollapseWatch)
 
 
@@ -68,6 +71,17 @@ async def load_model(live: Live) -> None:
     else:
         live.model_problem = None
         log.info("model %s loaded from %s", live.model.info.name, folder)
+    finally:
+        live.model_settled.set()
+
+
+async def settled_model(live: Live, wait_seconds: float) -> Model | None:
+    """The model, waiting up to ``wait_seconds`` for a load still in progress: each worker
+    loads its own copy, so a request can reach a worker that started a moment later."""
+    if live.model is None and not live.model_settled.is_set():
+        with contextlib.suppress(TimeoutError):
+            await asyncio.wait_for(live.model_settled.wait(), wait_seconds)
+    return live.model
 
 
 async def poll_registry(live: Live) -> None:

@@ -9,6 +9,7 @@ import subprocess
 import sys
 import time
 from collections.abc import Iterator
+from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 from typing import Any
 
@@ -88,6 +89,25 @@ def test_plain_and_streamed_continuations(long_take_server: Server) -> None:
     done = events[-1][1]
     assert done["tokens"] == answer["tokens"] and done["text"] == answer["text"]
     assert "".join(d["text"] for e, d in events if e == "step") == answer["text"]
+
+
+def test_concurrent_continuations_replay_exactly(long_take_server: Server) -> None:
+    """Six continuations at once share the workers' model sessions; each must equal the same
+    request made alone (nothing leaks between concurrent decode loops)."""
+    url = f"{long_take_server.base_url}/v1/continue"
+
+    def ask(seed: int) -> list[int]:
+        body = {"prompt": "Enter two watchmen, with a lantern.", "seed": seed, "budget": 48}
+        r = httpx.post(url, json=body, headers=auth("usher-desk"), timeout=60)
+        assert r.status_code == 200, r.text
+        tokens: list[int] = r.json()["tokens"]
+        return tokens
+
+    with ThreadPoolExecutor(6) as pool:
+        together = list(pool.map(ask, range(6)))
+    alone = [ask(seed) for seed in range(6)]
+    assert together == alone
+    assert len({tuple(t) for t in alone}) == 6  # temperature 1: different seeds, different text
 
 
 def test_a_client_that_goes_away_stops_the_generation(long_take_server: Server) -> None:

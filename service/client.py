@@ -4,6 +4,9 @@
     with Client("http://127.0.0.1:8411", key="...") as ks:
         result = ks.pick(logits, seed=7, routing_key="user-42")
         result.tokens, result.rows[0].kept
+        reply = ks.continue_prompt("Enter the porter,", seed=7)
+        for step in ks.stream_prompt("Enter the porter,"):
+            print(step.text, end="")
 
 Logits travel as a raw ``.npy`` body (no JSON encoding of big arrays); the other fields go in
 the query string. Errors come back as :class:`KeepsetError` carrying the problem document.
@@ -11,7 +14,8 @@ the query string. Errors come back as :class:`KeepsetError` carrying the problem
 
 from __future__ import annotations
 
-from collections.abc import Mapping, Sequence
+import json
+from collections.abc import AsyncIterator, Iterator, Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -62,6 +66,48 @@ class PickReply:
         )
 
 
+@dataclass(frozen=True)
+class Step(Row):
+    """One generated token of a continuation: a row's diagnostics and its text piece."""
+
+    text: str
+
+
+@dataclass(frozen=True)
+class ContinueReply:
+    request_id: str
+    client: str
+    policy: str
+    version: int
+    arm: str
+    seed: int
+    budget: int
+    prompt_tokens: int
+    text: str
+    tokens: list[int]
+    finish: str
+    steps: list[Step]
+    clamped: list[str]
+
+    @classmethod
+    def from_json(cls, data: Mapping[str, Any]) -> ContinueReply:
+        return cls(
+            request_id=data["request_id"],
+            client=data["client"],
+            policy=data["policy"],
+            version=int(data["version"]),
+            arm=str(data["arm"]),
+            seed=int(data["seed"]),
+            budget=int(data["budget"]),
+            prompt_tokens=int(data["prompt_tokens"]),
+            text=data["text"],
+            tokens=[int(t) for t in data["tokens"]],
+            finish=data["finish"],
+            steps=[Step(**step) for step in data["steps"]],
+            clamped=list(data.get("clamped", [])),
+        )
+
+
 class KeepsetError(Exception):
     """An error answer; ``problem`` is the RFC 9457 document keepset sent."""
 
@@ -93,14 +139,54 @@ def _pick_request(
     return to_npy(array), params
 
 
-def _reply(response: httpx.Response) -> PickReply:
+def _continue_body(
+    prompt: str,
+    budget: int | None,
+    seed: int | None,
+    routing_key: str | None,
+    adjust: Mapping[str, float] | None,
+    stream: bool,
+) -> dict[str, Any]:
+    body: dict[str, Any] = {"prompt": prompt, "stream": stream}
+    for name, value in (("budget", budget), ("seed", seed), ("routing_key", routing_key)):
+        if value is not None:
+            body[name] = value
+    if adjust:
+        body["adjust"] = {k: float(v) for k, v in adjust.items()}
+    return body
+
+
+def _check(response: httpx.Response) -> None:
     if response.status_code != 200:
         try:
             problem = response.json()
         except ValueError:
             problem = {"detail": response.text}
         raise KeepsetError(response.status_code, problem)
+
+
+def _reply(response: httpx.Response) -> PickReply:
+    _check(response)
     return PickReply.from_json(response.json())
+
+
+class _StepEvents:
+    """Reads a ``/v1/continue`` event stream line by line: :meth:`feed` returns the
+    :class:`Step` of a ``step`` event's data line (None for other lines); :attr:`done` turns
+    true at the ``done`` event."""
+
+    def __init__(self) -> None:
+        self.event = ""
+        self.done = False
+
+    def feed(self, line: str) -> Step | None:
+        if line.startswith("event: "):
+            self.event = line[len("event: ") :]
+        elif line.startswith("data: "):
+            if self.event == "step":
+                return Step(**json.loads(line[len("data: ") :]))
+            self.done = self.event == "done"
+        return None
 
 
 class Client:
@@ -125,6 +211,45 @@ class Client:
             "/v1/pick", content=body, params=params, headers={"Content-Type": NPY_MEDIA}
         )
         return _reply(response)
+
+    def continue_prompt(
+        self,
+        prompt: str,
+        *,
+        budget: int | None = None,
+        seed: int | None = None,
+        routing_key: str | None = None,
+        adjust: Mapping[str, float] | None = None,
+    ) -> ContinueReply:
+        """Continue ``prompt`` with the bundled model under this client's policy."""
+        body = _continue_body(prompt, budget, seed, routing_key, adjust, stream=False)
+        response = self._http.post("/v1/continue", json=body)
+        _check(response)
+        return ContinueReply.from_json(response.json())
+
+    def stream_prompt(
+        self,
+        prompt: str,
+        *,
+        budget: int | None = None,
+        seed: int | None = None,
+        routing_key: str | None = None,
+        adjust: Mapping[str, float] | None = None,
+    ) -> Iterator[Step]:
+        """The steps of a continuation as they are made; leaving the loop early closes the
+        connection, which stops the generation on the server."""
+        body = _continue_body(prompt, budget, seed, routing_key, adjust, stream=True)
+        with self._http.stream("POST", "/v1/continue", json=body) as response:
+            if response.status_code != 200:
+                response.read()
+                _check(response)
+            events = _StepEvents()
+            for line in response.iter_lines():
+                step = events.feed(line)
+                if step is not None:
+                    yield step
+                if events.done:
+                    return
 
     def close(self) -> None:
         self._http.close()
@@ -158,6 +283,42 @@ class AsyncClient:
             "/v1/pick", content=body, params=params, headers={"Content-Type": NPY_MEDIA}
         )
         return _reply(response)
+
+    async def continue_prompt(
+        self,
+        prompt: str,
+        *,
+        budget: int | None = None,
+        seed: int | None = None,
+        routing_key: str | None = None,
+        adjust: Mapping[str, float] | None = None,
+    ) -> ContinueReply:
+        body = _continue_body(prompt, budget, seed, routing_key, adjust, stream=False)
+        response = await self._http.post("/v1/continue", json=body)
+        _check(response)
+        return ContinueReply.from_json(response.json())
+
+    async def stream_prompt(
+        self,
+        prompt: str,
+        *,
+        budget: int | None = None,
+        seed: int | None = None,
+        routing_key: str | None = None,
+        adjust: Mapping[str, float] | None = None,
+    ) -> AsyncIterator[Step]:
+        body = _continue_body(prompt, budget, seed, routing_key, adjust, stream=True)
+        async with self._http.stream("POST", "/v1/continue", json=body) as response:
+            if response.status_code != 200:
+                await response.aread()
+                _check(response)
+            events = _StepEvents()
+            async for line in response.aiter_lines():
+                step = events.feed(line)
+                if step is not None:
+                    yield step
+                if events.done:
+                    return
 
     async def aclose(self) -> None:
         await self._http.aclose()

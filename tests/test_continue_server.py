@@ -4,6 +4,7 @@ model folder that keeps readiness at 503 with the reason."""
 
 from __future__ import annotations
 
+import asyncio
 import json
 import subprocess
 import sys
@@ -16,6 +17,8 @@ from typing import Any
 import httpx
 import pytest
 from conftest import Server, auth, start_server, stop_server
+
+from service.client import AsyncClient, Client, KeepsetError
 
 # A policy that never ends on its own: the end token is banned and there is no stop text, so
 # only the budget (or a client that goes away) ends a continuation.
@@ -108,6 +111,30 @@ def test_concurrent_continuations_replay_exactly(long_take_server: Server) -> No
     alone = [ask(seed) for seed in range(6)]
     assert together == alone
     assert len({tuple(t) for t in alone}) == 6  # temperature 1: different seeds, different text
+
+
+def test_python_client_continues_and_streams(long_take_server: Server) -> None:
+    base = long_take_server.base_url
+    with Client(base, key="demo-usher-desk-key", timeout=30) as client:
+        reply = client.continue_prompt("Enter the porter.", seed=9, budget=20)
+        assert reply.policy == "long-take" and len(reply.steps) == 20 == len(reply.tokens)
+        streamed = list(client.stream_prompt("Enter the porter.", seed=9, budget=20))
+        assert [s.token for s in streamed] == reply.tokens
+        assert "".join(s.text for s in streamed) == reply.text
+        with pytest.raises(KeepsetError) as refused:
+            client.continue_prompt("word " * 400)
+        assert refused.value.status == 413
+
+    async def from_asyncio() -> tuple[list[int], list[int]]:
+        async with AsyncClient(base, key="demo-usher-desk-key", timeout=30) as client:
+            plain = await client.continue_prompt("Enter the porter.", seed=9, budget=20)
+            steps = [
+                s.token async for s in client.stream_prompt("Enter the porter.", seed=9, budget=20)
+            ]
+            return plain.tokens, steps
+
+    plain_tokens, streamed_tokens = asyncio.run(from_asyncio())
+    assert plain_tokens == streamed_tokens == reply.tokens
 
 
 def test_a_client_that_goes_away_stops_the_generation(long_take_server: Server) -> None:

@@ -41,7 +41,12 @@ def _fast_header(data: bytes) -> tuple[tuple[int, ...], bool, np.dtype[np.generi
     if match is None:
         return None
     shape = tuple(int(p) for p in match["shape"].replace(b" ", b"").split(b",") if p)
-    return shape, match["fortran"] == b"True", np.dtype(match["descr"].decode()), 10 + length
+    descr = match["descr"].decode()
+    try:
+        dtype = np.dtype(descr)
+    except TypeError:  # not a dtype at all ('<f3'): a broken header, not an unsupported type
+        raise NpyError("malformed", f"the header names no valid dtype: {descr!r}") from None
+    return shape, match["fortran"] == b"True", dtype, 10 + length
 
 
 def read_npy(data: bytes) -> NDArray[np.floating]:

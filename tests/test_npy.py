@@ -90,7 +90,7 @@ def test_arbitrary_bytes_never_escape_as_another_error(data: bytes) -> None:
     [("<f8", "dtype"), ("<i4", "dtype"), ("|b1", "dtype"), ("<f3", "malformed"), ("<z9", None)],
 )
 def test_header_dtypes(descr: str, kind: str | None) -> None:
-    header = "{'descr': '%s', 'fortran_order': False, 'shape': (2,), }" % descr
+    header = "{'descr': '" + descr + "', 'fortran_order': False, 'shape': (2,), }"
     header += " " * (63 - len(header)) + "\n"
     body = b"\x93NUMPY\x01\x00" + len(header).to_bytes(2, "little") + header.encode() + bytes(16)
     with pytest.raises(NpyError) as refused:

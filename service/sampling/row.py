@@ -55,19 +55,18 @@ def _dense_start(chain: Chain, raw: F32, history: list[int]) -> tuple[IntArray, 
     """Apply the leading temperature and edit stages to a float64 copy of the whole row; stop
     at the first truncation stage with every surviving id as a candidate."""
     w = raw.astype(np.float64)
-    index = 0
-    for index, stage in enumerate(chain.stages):  # noqa: B007 - the index is returned
+    first_truncation = len(chain.stages)
+    for index, stage in enumerate(chain.stages):
         if stage.method == "temperature":
             w /= stage.number
         elif stage.method in EDIT_METHODS:
             for token, update in edits_for(stage, history).items():
                 w[token] = update(float(w[token]))
         else:
+            first_truncation = index
             break
-    else:
-        index = len(chain.stages)
     ids = np.flatnonzero(w > -np.inf)
-    return ids, w[ids], index
+    return ids, w[ids], first_truncation
 
 
 # --- the rules on one row -----------------------------------------------------------------------

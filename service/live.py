@@ -44,6 +44,8 @@ class Live:
 
 
 def reload_now(live: Live, trigger: str) -> dict[str, Any]:
+    """Reload the registry folder; keep the last good snapshot if any file is refused. Returns
+    the report the admin endpoint answers with."""
     snapshot, report = reload_registry(live.snapshot, live.settings.policies)
     live.snapshot = snapshot
     metrics.set_arm_weights(arm_shares(snapshot))
@@ -68,6 +70,9 @@ async def load_model(live: Live) -> None:
     except ModelError as exc:
         live.model_problem = f"model not loaded: {exc}"
         log.error("%s; /v1/continue answers 503 until it is fixed and keepset restarted", exc)
+    except Exception as exc:  # anything the runtime raises past the runner's own checks
+        live.model_problem = f"model not loaded: {type(exc).__name__}: {exc}"
+        log.exception("model not loaded; /v1/continue answers 503")
     else:
         live.model_problem = None
         log.info("model %s loaded from %s", live.model.info.name, folder)
@@ -85,6 +90,7 @@ async def settled_model(live: Live, wait_seconds: float) -> Model | None:
 
 
 async def poll_registry(live: Live) -> None:
+    """Reload whenever a file under the registry folder changes (0 seconds: never look)."""
     interval = live.settings.reload_poll_seconds
     if interval <= 0:
         return
@@ -103,6 +109,7 @@ async def poll_registry(live: Live) -> None:
 
 
 def arm_shares(snapshot: RegistrySnapshot) -> dict[tuple[str, str], float]:
+    """Configured share of each (client, arm label), for the ``keepset_arm_weight`` gauge."""
     return {
         (client, arm.public_label(i)): arm.weight / route.total_weight
         for client, route in snapshot.routes.items()

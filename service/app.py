@@ -89,7 +89,10 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         yield
         live.draining = True
         poller.cancel()
-        loader.cancel()
+        # The load runs in a worker thread that a cancel cannot stop; wait for it, so that no
+        # onnxruntime thread is still starting when the process exits.
+        with contextlib.suppress(Exception):
+            await loader
 
     app = FastAPI(
         title="keepset",

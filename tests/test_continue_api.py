@@ -205,3 +205,14 @@ def test_broken_model_folder_is_not_ready_but_picks_still_work(
         assert_problem(go(client, {"prompt": "x"}), 503, "model.onnx")
         pick = client.post("/v1/pick", json={"logits": [1.0, 2.0]}, headers=auth("usher-desk"))
         assert pick.status_code == 200
+
+
+def test_stopping_while_the_model_loads_waits_for_the_load(registry: Path) -> None:
+    """An app stopped a moment after it started must wait for the model's loading thread (a
+    cancel cannot stop it): an onnxruntime thread still starting at interpreter exit aborts the
+    process ("terminate called without an active exception")."""
+    with in_process(registry) as client:
+        assert client.get("/healthz").status_code == 200
+        live = client.app.state.live  # type: ignore[attr-defined]
+        assert live.model is None  # stopped long before a load could finish
+    assert live.model is not None and live.model_problem is None

@@ -10,6 +10,7 @@ only ever carry configured names (clients, policies, arms, endpoints), never req
 from __future__ import annotations
 
 import os
+import re
 from collections.abc import Sequence
 
 from prometheus_client import (
@@ -134,7 +135,9 @@ _exported_arms: set[tuple[str, str]] = set()
 
 
 def _registry() -> CollectorRegistry:
-    if os.environ.get("PROMETHEUS_MULTIPROC_DIR"):
+    folder = os.environ.get("PROMETHEUS_MULTIPROC_DIR")
+    if folder:
+        forget_dead_workers(folder)
         registry = CollectorRegistry()
         prom_multiprocess.MultiProcessCollector(registry)  # type: ignore[no-untyped-call]
         return registry
@@ -161,7 +164,28 @@ def assignment_counts() -> dict[tuple[str, str], int]:
     return counts
 
 
-def worker_exited(pid: int) -> None:
-    """Tell multiprocess mode that a worker is gone, so its live gauges stop counting."""
-    if os.environ.get("PROMETHEUS_MULTIPROC_DIR"):
-        prom_multiprocess.mark_process_dead(pid)  # type: ignore[no-untyped-call]
+_LIVE_GAUGE_FILE = re.compile(r"gauge_live[a-z]+_(\d+)\.db")
+
+
+def forget_dead_workers(folder: str) -> None:
+    """Drop the live gauges of worker processes that no longer exist.
+
+    uvicorn restarts a worker that dies but tells nobody, so nothing else would call
+    ``mark_process_dead``: a crashed worker's ``keepset_collapse_active`` of 1 would stay in
+    the aggregate for good. Checked before every collection; counters and histograms of dead
+    workers stay, as they must.
+    """
+    for name in os.listdir(folder):
+        match = _LIVE_GAUGE_FILE.fullmatch(name)
+        if match and not _alive(int(match[1])):
+            prom_multiprocess.mark_process_dead(int(match[1]), folder)  # type: ignore[no-untyped-call]
+
+
+def _alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:  # someone else's process: it exists
+        return True
+    return True

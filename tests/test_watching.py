@@ -4,6 +4,9 @@ p-value of the sample-ratio check against SciPy, and both kept consistent over t
 from __future__ import annotations
 
 import logging
+import os
+import subprocess
+import sys
 import time
 from collections.abc import Iterator
 from pathlib import Path
@@ -189,3 +192,44 @@ def test_watch_and_split_agree_across_two_workers(registry: Path) -> None:
             assert httpx.post(url, json=body, headers=auth("prompt-book-app"), timeout=10)
     finally:
         stop_server(server)
+
+
+def test_a_dead_workers_collapse_gauge_is_forgotten(tmp_path: Path) -> None:
+    """Multiprocess metrics: a worker's collapse gauge counts while it lives and is dropped once
+    it is gone (uvicorn restarts dead workers silently), while its counters stay."""
+    env = {**os.environ, "PROMETHEUS_MULTIPROC_DIR": str(tmp_path)}
+    worker = subprocess.Popen(
+        [
+            sys.executable,
+            "-c",
+            "from service import metrics\n"
+            "metrics.COLLAPSE_ACTIVE.labels('prompt-book', '3').set(1)\n"
+            "metrics.ROWS.labels('prompt-book-app', 'prompt-book', '3', 'control').inc(3)\n"
+            "print('set', flush=True)\n"
+            "input()\n",
+        ],
+        env=env,
+        stdin=subprocess.PIPE,
+        stdout=subprocess.PIPE,
+        text=True,
+    )
+
+    def scrape() -> str:
+        reader = "from service import metrics; print(metrics.exposition()[0].decode())"
+        done = subprocess.run(
+            [sys.executable, "-c", reader], env=env, capture_output=True, text=True, timeout=60
+        )
+        assert done.returncode == 0, done.stderr
+        return done.stdout
+
+    gauge = 'keepset_collapse_active{policy="prompt-book",version="3"} 1.0'
+    rows = 'keepset_rows_total{arm="control",client="prompt-book-app",policy="prompt-book",'
+    try:
+        assert worker.stdout is not None and worker.stdout.readline().strip() == "set"
+        alive = scrape()
+        assert gauge in alive and rows in alive
+    finally:
+        worker.communicate("\n", timeout=30)
+    gone = scrape()
+    assert gauge not in gone
+    assert rows + 'version="3"} 3.0' in gone

@@ -22,7 +22,6 @@ from __future__ import annotations
 import argparse
 import http.client
 import json
-import os
 import shutil
 import statistics
 import subprocess
@@ -33,7 +32,7 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-from bench_http import free_port, wait_ready
+from bench_http import start_keepset
 
 from service.keys import load_keyring
 from service.model import BUNDLED, Model
@@ -119,24 +118,12 @@ def bench_registry(folder: Path, budget: int) -> None:
 def start_server(registry: Path, name: str) -> tuple[subprocess.Popen[bytes], int]:
     demo_routes = (ROOT / "policies" / "routes.yaml").read_text()
     (registry / "routes.yaml").write_text(demo_routes.replace("box-office@1", f"{name}@1"))
-    port = free_port()
-    env = {
-        **os.environ,
-        "KEEPSET_POLICIES": str(registry),
-        "KEEPSET_PORT": str(port),
-        "KEEPSET_WORKERS": "1",
-        "KEEPSET_LOG_LEVEL": "warning",
-        "KEEPSET_RELOAD_POLL_SECONDS": "0",
-        "KEEPSET_MODEL_THREADS": "1",
-    }
-    proc = subprocess.Popen(
-        [sys.executable, "-m", "service.cli", "serve"],
-        env=env,
-        stdout=subprocess.DEVNULL,
-        stderr=subprocess.DEVNULL,
+    return start_keepset(
+        1,
+        KEEPSET_POLICIES=str(registry),
+        KEEPSET_RELOAD_POLL_SECONDS="0",
+        KEEPSET_MODEL_THREADS="1",
     )
-    wait_ready(port, "/readyz", proc)
-    return proc, port
 
 
 def one_http_request(conn: http.client.HTTPConnection, name: str, budget: int, seed: int) -> float:

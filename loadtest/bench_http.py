@@ -51,7 +51,8 @@ def wait_ready(port: int, path: str, process: subprocess.Popen[bytes]) -> None:
     raise RuntimeError("server not ready")
 
 
-def start_keepset(workers: int) -> tuple[subprocess.Popen[bytes], int]:
+def start_keepset(workers: int, **settings: str) -> tuple[subprocess.Popen[bytes], int]:
+    """A ``keepset serve`` on a free loopback port; ``settings`` are extra KEEPSET_* values."""
     port = free_port()
     env = {
         **os.environ,
@@ -59,6 +60,7 @@ def start_keepset(workers: int) -> tuple[subprocess.Popen[bytes], int]:
         "KEEPSET_WORKERS": str(workers),
         "KEEPSET_LOG_LEVEL": "warning",
         "KEEPSET_MAX_IN_FLIGHT": "1000",
+        **settings,
     }
     proc = subprocess.Popen(
         [sys.executable, "-m", "service.cli", "serve"],

@@ -61,6 +61,19 @@ def rows_total(server: Server, policy: str) -> float:
     )
 
 
+def settled_rows(server: Server, before: float, deadline: float) -> float:
+    """Rows long-take served since ``before``, once the count stops growing. The server counts
+    a continuation's steps when it has ended, so the count is 0 while the model still runs."""
+    counted = -1.0
+    while time.monotonic() < deadline:
+        time.sleep(0.5)
+        now = rows_total(server, "long-take") - before
+        if now == counted and now > 0:
+            break
+        counted = now
+    return counted
+
+
 @pytest.fixture
 def long_take_server(registry: Path) -> Iterator[Server]:
     (registry / "long-take").mkdir()
@@ -147,16 +160,8 @@ def test_a_client_that_goes_away_stops_the_generation(long_take_server: Server) 
             steps += event == "step"
             if steps == 3:
                 break  # leaving the block closes the connection mid-stream
-    # The server counts every generated step once the stream has ended; wait until that count
-    # settles, then check that it stopped far short of the 4000-token budget (~10 s of work).
-    deadline = time.monotonic() + 10
-    counted = -1.0
-    while time.monotonic() < deadline:
-        time.sleep(0.5)
-        now = rows_total(long_take_server, "long-take") - before
-        if now == counted and now > 0:
-            break
-        counted = now
+    # It stopped far short of the 4000-token budget (~10 s of work).
+    counted = settled_rows(long_take_server, before, deadline=time.monotonic() + 10)
     assert 3 <= counted < 400, counted
 
 
@@ -166,14 +171,7 @@ def test_a_plain_request_whose_client_goes_away_stops_too(long_take_server: Serv
     started = time.monotonic()
     with pytest.raises(httpx.ReadTimeout):  # the client gives up and closes the connection
         httpx.post(url, json={"prompt": "Alarum within."}, headers=auth("usher-desk"), timeout=0.5)
-    deadline = started + 10
-    counted = -1.0
-    while time.monotonic() < deadline:
-        time.sleep(0.5)
-        now = rows_total(long_take_server, "long-take") - before
-        if now == counted and now > 0:
-            break
-        counted = now
+    counted = settled_rows(long_take_server, before, deadline=started + 10)
     # About half a second of work, not the 4000-token budget (about ten seconds).
     assert 1 <= counted < 1000, counted
     text = httpx.get(f"{long_take_server.base_url}/metrics", timeout=5).text

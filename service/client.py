@@ -53,17 +53,7 @@ class PickReply:
 
     @classmethod
     def from_json(cls, data: Mapping[str, Any]) -> PickReply:
-        return cls(
-            request_id=data["request_id"],
-            client=data["client"],
-            policy=data["policy"],
-            version=int(data["version"]),
-            arm=str(data["arm"]),
-            seed=int(data["seed"]),
-            tokens=[int(t) for t in data["tokens"]],
-            rows=[Row(**row) for row in data["rows"]],
-            clamped=list(data.get("clamped", [])),
-        )
+        return cls(**_head(data), rows=[Row(**row) for row in data["rows"]])
 
 
 @dataclass(frozen=True)
@@ -92,20 +82,27 @@ class ContinueReply:
     @classmethod
     def from_json(cls, data: Mapping[str, Any]) -> ContinueReply:
         return cls(
-            request_id=data["request_id"],
-            client=data["client"],
-            policy=data["policy"],
-            version=int(data["version"]),
-            arm=str(data["arm"]),
-            seed=int(data["seed"]),
+            **_head(data),
             budget=int(data["budget"]),
             prompt_tokens=int(data["prompt_tokens"]),
             text=data["text"],
-            tokens=[int(t) for t in data["tokens"]],
             finish=data["finish"],
             steps=[Step(**step) for step in data["steps"]],
-            clamped=list(data.get("clamped", [])),
         )
+
+
+def _head(data: Mapping[str, Any]) -> dict[str, Any]:
+    """The fields every answer of keepset's sampling endpoints carries."""
+    return {
+        "request_id": data["request_id"],
+        "client": data["client"],
+        "policy": data["policy"],
+        "version": int(data["version"]),
+        "arm": str(data["arm"]),
+        "seed": int(data["seed"]),
+        "tokens": [int(t) for t in data["tokens"]],
+        "clamped": list(data.get("clamped", [])),
+    }
 
 
 class KeepsetError(Exception):

@@ -131,12 +131,17 @@ def top_p(row: Row, stage: Stage, history: list[int], min_keep: int) -> Row:
     return _keep(row, shortest_prefix(-p, p, stage.number), min_keep)
 
 
+def _log_softmax(w: F64) -> tuple[F64, F64]:
+    """(log-probabilities, probabilities) of the working logits."""
+    shifted = w - w.max()
+    logp: F64 = shifted - math.log(float(np.exp(shifted).sum()))
+    return logp, np.exp(logp)
+
+
 def typical(row: Row, stage: Stage, history: list[int], min_keep: int) -> Row:
     if stage.number >= 1.0:
         return row
-    shifted = row[1] - row[1].max()
-    logp = shifted - math.log(float(np.exp(shifted).sum()))
-    p = np.exp(logp)
+    logp, p = _log_softmax(row[1])
     entropy = -float(np.dot(p, logp))
     return _keep(row, shortest_prefix(np.abs(logp + entropy), p, stage.number), min_keep)
 
@@ -153,9 +158,7 @@ def epsilon(row: Row, stage: Stage, history: list[int], min_keep: int) -> Row:
 
 def eta(row: Row, stage: Stage, history: list[int], min_keep: int) -> Row:
     eps = stage.number
-    shifted = row[1] - row[1].max()
-    logp = shifted - math.log(float(np.exp(shifted).sum()))
-    p = np.exp(logp)
+    logp, p = _log_softmax(row[1])
     threshold = min(eps, math.sqrt(eps) * math.exp(float(np.dot(p, logp))))
     return _keep(row, np.flatnonzero(p >= threshold), min_keep)
 

@@ -9,7 +9,6 @@ metrics imports live here; the HTTP layer streams or collects what :class:`Promp
 
 from __future__ import annotations
 
-import secrets
 import threading
 from collections.abc import Sequence
 from dataclasses import asdict, dataclass
@@ -18,9 +17,7 @@ import numpy as np
 import numpy.typing as npt
 
 from service.model import Continuation, Model
-from service.sampling import Chain, PickResult, pick
-
-FRESH_SEED_BITS = 53  # fresh seeds stay exact in JSON numbers, like the pick path's
+from service.sampling import Chain, PickResult, fresh_seed, pick
 
 
 class Cancelled(Exception):
@@ -67,7 +64,7 @@ class PromptRun:
         keep_logits: bool = False,
         cancel: threading.Event | None = None,
     ) -> None:
-        self.seed = secrets.randbits(FRESH_SEED_BITS) if seed is None else seed
+        self.seed = fresh_seed() if seed is None else seed
         self.cancel = cancel
         self.chain = chain
         self.records: list[StepRecord] = []

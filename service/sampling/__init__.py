@@ -19,7 +19,14 @@ from service.sampling.chain import (
     Stage,
     parse_chain,
 )
-from service.sampling.core import InputError, PickResult, as_batch, final_distribution, pick
+from service.sampling.core import (
+    InputError,
+    PickResult,
+    as_batch,
+    final_distribution,
+    fresh_seed,
+    pick,
+)
 
 __all__ = [
     "METHODS",
@@ -34,6 +41,7 @@ __all__ = [
     "Stage",
     "as_batch",
     "final_distribution",
+    "fresh_seed",
     "parse_chain",
     "pick",
 ]

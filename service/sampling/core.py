@@ -89,7 +89,7 @@ def pick(
     """
     rows = as_batch(logits)
     if seed is None:
-        seed = secrets.randbits(_FRESH_SEED_BITS)
+        seed = fresh_seed()
     _check_seed(seed)
     histories = _histories(history, rows.shape)
     _check_token_ids(chain, rows.shape[1])
@@ -153,6 +153,11 @@ def _pick_single(
         fallback=[None],
         seed=seed,
     )
+
+
+def fresh_seed() -> int:
+    """A new random seed, below 2**53 so that any JSON client can echo it back exactly."""
+    return secrets.randbits(_FRESH_SEED_BITS)
 
 
 def _inverse_cdf(probs: F64, uniforms: F64) -> IntArray:

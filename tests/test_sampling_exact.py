@@ -10,9 +10,13 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from sampling_reference import reference_row
 
-from service.sampling import final_distribution, parse_chain, pick
+from service.sampling import compiled, final_distribution, kernel_available, parse_chain, pick
 
-ROWS_CHECKED = {"hypothesis": 0, "sweep": 0, "ambiguous": 0}
+# Every row is checked on both paths; without numba the suite must say so, not pass quietly.
+assert kernel_available(), "the compiled kernel needs numba (pip install -e '.[test]')"
+KERNELS = ("compiled", "numpy")
+
+ROWS_CHECKED = {"hypothesis": 0, "sweep": 0, "ambiguous": 0, "kernel_cut": 0}
 
 
 def _stage(draw: Any, vocab: int) -> dict[str, Any]:
@@ -90,24 +94,36 @@ def cases(draw: Any) -> tuple[list[dict[str, Any]], int, np.ndarray, list[list[i
 def _compare(
     stages: list[dict[str, Any]], min_keep: int, x: np.ndarray, history: list[list[int]]
 ) -> int:
-    """Each row against the reference, decided both within its batch and alone (a single row
-    takes the lean one-row path of ``sampling.row``, a batch the batched rules)."""
+    """Each row against the reference, on both paths (the compiled kernel and numpy), decided
+    both within its batch and alone (on the numpy path a single row takes the lean one-row
+    path of ``sampling.row``, a batch the batched rules)."""
     chain = parse_chain(stages, min_keep=min_keep)
-    got = final_distribution(chain, x, history=history)
-    out = pick(chain, x, seed=3, history=history)
-    for b in range(x.shape[0]):
-        want, reason, ambiguous = reference_row(stages, min_keep, x[b], history[b])
-        alone = final_distribution(chain, x[b], history=[history[b]])[0]
-        alone_out = pick(chain, x[b], seed=3, history=[history[b]], first_stream=b)
-        assert out.fallback[b] == reason and alone_out.fallback[0] == reason
-        if ambiguous:
-            ROWS_CHECKED["ambiguous"] += 1
-            continue
-        assert want[out.tokens[b]] > 0, "drawn token outside the reference kept set"
-        assert want[alone_out.tokens[0]] > 0, "drawn token outside the reference kept set"
-        for dist in (got[b], alone):
-            np.testing.assert_array_equal(np.flatnonzero(dist), np.flatnonzero(want))
-            np.testing.assert_allclose(dist, want, atol=1e-6, rtol=0)
+    wants = [reference_row(stages, min_keep, x[b], history[b]) for b in range(x.shape[0])]
+    tokens = {}
+    for kernel in KERNELS:
+        got = final_distribution(chain, x, history=history, kernel=kernel)
+        out = pick(chain, x, seed=3, history=history, kernel=kernel)
+        tokens[kernel] = out.tokens
+        for b, (want, reason, ambiguous) in enumerate(wants):
+            alone = final_distribution(chain, x[b], history=[history[b]], kernel=kernel)[0]
+            alone_out = pick(
+                chain, x[b], seed=3, history=[history[b]], first_stream=b, kernel=kernel
+            )
+            assert out.fallback[b] == reason and alone_out.fallback[0] == reason
+            if ambiguous:
+                continue
+            assert want[out.tokens[b]] > 0, f"{kernel}: drawn token outside the reference set"
+            assert want[alone_out.tokens[0]] > 0, f"{kernel}: drawn token outside the set"
+            for dist in (got[b], alone):
+                np.testing.assert_array_equal(np.flatnonzero(dist), np.flatnonzero(want))
+                np.testing.assert_allclose(dist, want, atol=1e-6, rtol=0)
+    # A replay must not depend on whether numba is installed: both paths draw the same token
+    # (the two compute the final probabilities in a different order, so they could part only
+    # where a uniform falls within rounding of a cumulative boundary).
+    np.testing.assert_array_equal(tokens["compiled"], tokens["numpy"])
+    ROWS_CHECKED["ambiguous"] += sum(ambiguous for _, _, ambiguous in wants)
+    if compiled.plan_for(chain) is not None:
+        ROWS_CHECKED["kernel_cut"] += x.shape[0]
     return x.shape[0]
 
 
@@ -164,3 +180,5 @@ def test_report_row_count() -> None:
     assert total >= 2000, ROWS_CHECKED
     # Flat and quantised rows put many cumulative sums exactly on a threshold; keep that a minority.
     assert ROWS_CHECKED["ambiguous"] < 0.1 * total
+    # The kernel cuts rows for chains whose first truncation ranks; a good share must be those.
+    assert ROWS_CHECKED["kernel_cut"] > 0.2 * total, ROWS_CHECKED

@@ -1,4 +1,5 @@
-"""The sampling core: pure numpy functions that turn logits into tokens under a chain.
+"""The sampling core: pure functions that turn logits into tokens under a chain (numpy, and a
+compiled numba kernel where numba is installed; both follow the same rules).
 
 No web, metrics or model imports live here; the HTTP layer, the model runner and the benchmarks
 all call this same API (DESIGN.md section 1)::
@@ -20,28 +21,38 @@ from service.sampling.chain import (
     parse_chain,
 )
 from service.sampling.core import (
+    KERNELS,
     InputError,
+    Kernel,
     PickResult,
     as_batch,
+    default_kernel,
     final_distribution,
     fresh_seed,
+    kernel_available,
     pick,
+    warm_up,
 )
 
 __all__ = [
+    "KERNELS",
     "METHODS",
     "SCALAR_METHODS",
     "TRUNCATION_METHODS",
     "Chain",
     "ChainError",
     "InputError",
+    "Kernel",
     "OccurrencePenalty",
     "PickResult",
     "RepetitionPenalty",
     "Stage",
     "as_batch",
+    "default_kernel",
     "final_distribution",
     "fresh_seed",
+    "kernel_available",
     "parse_chain",
     "pick",
+    "warm_up",
 ]

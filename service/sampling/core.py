@@ -1,9 +1,17 @@
 """Applying a chain to a batch of logits: the kept set, the final distribution, the draw.
 
-The rules are those of DESIGN.md section 1. Each row is first cut down to a candidate set
-without copying the vocabulary (``full``); the stage rules then run on all rows at once
-(``batch``). Rows the chain cannot decide (non-finite logits, nothing left) go to the chain's
-fallback, then to greedy. Diagnostics describe the raw model: softmax of the finite raw logits.
+The rules are those of DESIGN.md section 1. Two paths decide a row, held to the same rules by
+the tests:
+
+- the compiled kernel (``compiled``, ``kernel``; numba), row by row and rows in parallel, for
+  chains whose first truncation ranks (top_k, greedy, min_p);
+- the numpy path: each row is first cut down to a candidate set without copying the vocabulary
+  (``full``); the stage rules then run on all rows at once (``batch``), or on a single row
+  (``row``). It decides every row the kernel hands back, and everything when numba is missing
+  or ``kernel="numpy"`` is asked for.
+
+Rows the chain cannot decide (non-finite logits, nothing left) go to the chain's fallback, then
+to greedy. Diagnostics describe the raw model: softmax of the finite raw logits.
 """
 
 from __future__ import annotations
@@ -12,9 +20,11 @@ import itertools
 import math
 import os
 import secrets
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
+from types import ModuleType
+from typing import TYPE_CHECKING, Literal
 
 import numpy as np
 from numpy.typing import NDArray
@@ -23,6 +33,15 @@ from service.sampling.batch import RULES, Candidates, compact, probabilities
 from service.sampling.chain import TRUNCATION_METHODS, Chain
 from service.sampling.full import narrow_row
 from service.sampling.row import decide_row
+
+if TYPE_CHECKING:
+    from service.sampling.compiled import Decided, Plan
+
+compiled: ModuleType | None
+try:
+    from service.sampling import compiled
+except ImportError:  # numba is not installed: the numpy path decides every row
+    compiled = None
 
 # Fresh seeds stay below 2**53 so that any JSON client can echo them back exactly.
 _FRESH_SEED_BITS = 53
@@ -35,6 +54,24 @@ F32 = NDArray[np.float32]
 F64 = NDArray[np.float64]
 IntArray = NDArray[np.intp]
 Logits = NDArray[np.floating] | Sequence[float] | Sequence[Sequence[float]]
+Kernel = Literal["compiled", "numpy"]
+KERNELS: tuple[Kernel, ...] = ("compiled", "numpy")
+
+
+def kernel_available() -> bool:
+    """Whether the compiled kernel can run here (numba imports)."""
+    return compiled is not None
+
+
+def default_kernel() -> Kernel:
+    return "compiled" if compiled is not None else "numpy"
+
+
+def warm_up() -> None:
+    """Compile the kernel now (or load it from numba's on-disk cache), so that the first
+    request does not wait for it; nothing to do without numba."""
+    if compiled is not None:
+        compiled.warm_up()
 
 
 class InputError(ValueError):
@@ -79,13 +116,15 @@ def pick(
     *,
     first_stream: int = 0,
     threads: int | None = None,
+    kernel: Kernel | None = None,
 ) -> PickResult:
     """Draw one token per row under ``chain``.
 
     ``logits`` is ``[V]`` or ``[B, V]`` (float16/32/64; worked on as float32). Row ``b`` draws
     from its own stream, output ``first_stream + b`` of SplitMix64 seeded with ``seed``, so a
     row's token depends only on its logits, its history, the chain and (seed, stream). Without a
-    seed a fresh one is made; ``PickResult.seed`` always says which seed was used.
+    seed a fresh one is made; ``PickResult.seed`` always says which seed was used. ``kernel``
+    chooses the path (None: the compiled kernel when numba is installed).
     """
     rows = as_batch(logits)
     if seed is None:
@@ -93,12 +132,108 @@ def pick(
     _check_seed(seed)
     histories = _histories(history, rows.shape)
     _check_token_ids(chain, rows.shape[1])
+    uniforms = _uniforms(seed, first_stream, rows.shape[0])
+    plan = _plan(chain, kernel)
+    if plan is None:
+        return _pick_numpy(chain, rows, histories, uniforms, seed, threads)
+    return _pick_compiled(chain, plan, rows, histories, uniforms, seed, threads)
+
+
+def _plan(chain: Chain, kernel: Kernel | None) -> Plan | None:
+    """The compiled kernel's plan for ``chain``, or None for the numpy path."""
+    if kernel not in (None, *KERNELS):
+        raise ValueError(f"kernel must be one of {KERNELS}, got {kernel!r}")
+    if kernel == "numpy" or compiled is None:
+        if kernel == "compiled":
+            raise RuntimeError("the compiled kernel needs numba, which is not installed")
+        return None
+    plan: Plan | None = compiled.plan_for(chain)
+    return plan
+
+
+def _pick_compiled(
+    chain: Chain,
+    plan: Plan,
+    rows: F32,
+    histories: list[list[int]],
+    uniforms: F64,
+    seed: int,
+    threads: int | None,
+) -> PickResult:
+    """Rows through the compiled kernel, in parallel threads for large batches (the kernel
+    releases the GIL); the rows it hands back go to the numpy path."""
+    assert compiled is not None
+    n = rows.shape[0]
+    decided = _decide_compiled(chain, plan, rows, histories, uniforms, threads)
+    rest = _handed_back(rows, decided)
+    if len(rest) == n:
+        return _pick_numpy(chain, rows, histories, uniforms, seed, threads)
+    tokens = np.empty(n, np.int64)
+    kept = np.empty(n, np.int64)
+    kept_mass = np.empty(n)
+    entropy = np.empty(n)
+    prob = np.empty(n)
+    logprob = np.empty(n)
+    fallback: list[str | None] = [None] * n
+    for b, d in enumerate(decided):
+        if d is not None:
+            tokens[b], prob[b], kept[b] = d.token, d.prob, d.ids.size
+            kept_mass[b], entropy[b], logprob[b] = d.kept_mass, d.entropy, d.logprob
+    if rest:
+        others = _pick_numpy(
+            chain, rows[rest], [histories[b] for b in rest], uniforms[rest], seed, threads
+        )
+        tokens[rest], kept[rest], kept_mass[rest] = others.tokens, others.kept, others.kept_mass
+        entropy[rest], prob[rest], logprob[rest] = others.entropy, others.prob, others.logprob
+        for i, b in enumerate(rest):
+            fallback[b] = others.fallback[i]
+    return PickResult(tokens, kept, kept_mass, entropy, prob, logprob, fallback, seed)
+
+
+def _decide_compiled(
+    chain: Chain,
+    plan: Plan,
+    rows: F32,
+    histories: list[list[int]],
+    uniforms: F64,
+    threads: int | None,
+) -> list[Decided | None]:
+    assert compiled is not None
+    n = rows.shape[0]
+    decided: list[Decided | None] = [None] * n
+    decide = compiled.decide
+
+    def work(lo: int, hi: int) -> None:
+        for b in range(lo, hi):
+            decided[b] = decide(chain, plan, rows[b], histories[b], float(uniforms[b]))
+
+    _in_parallel(work, n, _thread_count(threads, rows.size, n))
+    return decided
+
+
+def _handed_back(rows: F32, decided: list[Decided | None]) -> list[int]:
+    """The rows the kernel did not decide; a row among them with no finite entry is refused
+    here, under its own index (the numpy path would only see its place among these)."""
+    rest = [b for b, d in enumerate(decided) if d is None]
+    for b in rest:
+        if not np.isfinite(rows[b]).any():
+            raise InputError("no_finite", f"row {b} has no finite logit")
+    return rest
+
+
+def _pick_numpy(
+    chain: Chain,
+    rows: F32,
+    histories: list[list[int]],
+    uniforms: F64,
+    seed: int,
+    threads: int | None,
+) -> PickResult:
     if rows.shape[0] == 1:
-        single = _pick_single(chain, rows, histories[0], seed, first_stream)
+        single = _pick_single(chain, rows, histories[0], seed, uniforms)
         if single is not None:
             return single
     rows, groups, log_norm, entropy = _resolve(chain, rows, histories, threads)
-    uniforms = _uniforms(seed, first_stream, rows.shape[0])
     n = rows.shape[0]
     tokens = np.empty(n, np.int64)
     kept = np.empty(n, np.int64)
@@ -124,7 +259,7 @@ def pick(
 
 
 def _pick_single(
-    chain: Chain, rows: F32, history: list[int], seed: int, first_stream: int
+    chain: Chain, rows: F32, history: list[int], seed: int, uniforms: F64
 ) -> PickResult | None:
     """One finite row decided by its own chain, on the lean path of ``row``; None sends the
     row to the general path (invalid entries, nothing left, fallbacks)."""
@@ -136,7 +271,7 @@ def _pick_single(
         return None
     ids, probs = decided
     log_norm, entropy = _raw_diagnostics(rows, top)
-    at = int(_inverse_cdf(probs[None, :], _uniforms(seed, first_stream, 1))[0])
+    at = int(_inverse_cdf(probs[None, :], uniforms)[0])
     token = int(ids[at])
     raw = rows[0]
     if ids.size == raw.size:
@@ -188,11 +323,26 @@ def final_distribution(
     chain: Chain,
     logits: Logits,
     history: Sequence[Sequence[int]] | None = None,
+    *,
+    kernel: Kernel | None = None,
 ) -> F64:
     """The distribution ``pick`` draws from: float64 ``[B, V]``, zero outside the kept set."""
     rows = as_batch(logits)
     histories = _histories(history, rows.shape)
     _check_token_ids(chain, rows.shape[1])
+    plan = _plan(chain, kernel)
+    if plan is not None:
+        by_kernel = _decide_compiled(chain, plan, rows, histories, np.zeros(rows.shape[0]), 1)
+        rest = _handed_back(rows, by_kernel)
+        out = np.zeros(rows.shape, np.float64)
+        for b, d in enumerate(by_kernel):
+            if d is not None:
+                out[b, d.ids] = d.probs
+        if rest:
+            out[rest] = final_distribution(
+                chain, rows[rest], [histories[b] for b in rest], kernel="numpy"
+            )
+        return out
     out = np.zeros(rows.shape, np.float64)
     if rows.shape[0] == 1 and math.isfinite(float(rows.max())):
         decided = decide_row(chain, rows[0], histories[0])
@@ -313,19 +463,14 @@ def _first_pass(
     is_valid = np.zeros(n, dtype=bool)
     is_valid[valid] = True
 
-    def work(bounds: tuple[int, int]) -> None:
-        lo, hi = bounds  # a slice, so the rows are viewed, not copied
+    def work(lo: int, hi: int) -> None:
+        # a slice, so the rows are viewed, not copied
         log_norm[lo:hi], entropy[lo:hi] = _raw_diagnostics(rows[lo:hi], top[lo:hi])
         for b in range(lo, hi):
             if is_valid[b]:
                 narrowed[b] = narrow_row(chain, rows[b], histories[b])
 
-    workers = _thread_count(threads, rows.size, n)
-    if workers == 1:
-        work((0, n))
-    else:
-        edges = np.linspace(0, n, workers + 1).astype(int).tolist()
-        list(_pool(workers).map(work, itertools.pairwise(edges)))
+    _in_parallel(work, n, _thread_count(threads, rows.size, n))
     return log_norm, entropy, [r for r in narrowed if r is not None]
 
 
@@ -440,6 +585,15 @@ def _thread_count(threads: int | None, elements: int, rows: int) -> int:
     if threads is None:
         threads = min(2, os.cpu_count() or 1) if elements >= _PARALLEL_MIN_ELEMENTS else 1
     return max(1, min(threads, rows))
+
+
+def _in_parallel(work: Callable[[int, int], None], n: int, workers: int) -> None:
+    """``work(lo, hi)`` over ``range(n)`` split into ``workers`` contiguous parts, in threads."""
+    if workers == 1:
+        work(0, n)
+        return
+    edges = np.linspace(0, n, workers + 1).astype(int).tolist()
+    list(_pool(workers).map(lambda bounds: work(*bounds), itertools.pairwise(edges)))
 
 
 _POOLS: dict[int, ThreadPoolExecutor] = {}

@@ -1,0 +1,368 @@
+"""The compiled row kernel: one row of logits to a kept set and a drawn token, in numba.
+
+This is the fast path of ``core``; the numpy modules (``full``, ``row``, ``batch``) stay the
+reference it is held to, and the path used when numba is missing. Per row it makes one fused
+pass over the vocabulary, chunk by chunk while the chunk is in L1: block maxima (for the
+candidate cut), the running maximum, and the exp-sum and entropy sums of the raw softmax, all
+vectorised (AVX2/AVX-512 where the CPU has it). Then it cuts the row to the candidates of the
+chain's first ranking stage (top_k, greedy, min_p), exactly as ``full`` does, and applies the
+remaining stages to those few candidates with the exact rules of DESIGN.md section 1: float64
+working logits, ties to the lower id, prefixes in the order of a stable sort.
+
+A row the kernel does not decide (NaN or +inf entries, nothing left, a chain whose first
+truncation needs the whole renormalised distribution) comes back with a status, and ``core``
+decides it on the numpy path instead.
+
+Everything here is a pure function of its arguments; numba compiles it once per process, or
+loads it from its on-disk cache (``cache=True``).
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Any
+
+import numpy as np
+from llvmlite import ir
+from numba import njit, types
+from numba.extending import intrinsic
+
+# --- status of a row --------------------------------------------------------------------------
+
+DECIDED = 0
+INVALID = 1  # NaN or +inf entries, or no finite entry: the numpy path decides (fallback, 422)
+EMPTY = 2  # the chain left nothing: the numpy path applies the fallback
+
+# --- stage codes (the order of chain.METHODS does not matter; these are the kernel's own) --------
+
+TEMPERATURE = 0
+EDIT = 1
+TOP_K = 2
+TOP_P = 3
+TYPICAL = 4
+MIN_P = 5
+EPSILON = 6
+ETA = 7
+GREEDY = 8
+
+# Edit kinds: how one token's working logit changes.
+PENALISE = 0  # repetition penalty: v / f if v > 0 else v * f
+SHIFT = 1  # v + delta
+REMOVE = 2  # -inf
+
+# Block length of the block maxima; a chunk is several blocks and stays in L1 while it is used.
+BLOCK = 64
+CHUNK = 512
+
+_JIT: dict[str, Any] = {"nogil": True, "cache": True, "error_model": "numpy"}
+# Reassociation lets LLVM vectorise the sums; no flag that assumes finite values, because -inf
+# entries are legal and NaN must be detected.
+_VECTOR_MATH = {"contract", "reassoc", "nsz", "arcp"}
+
+
+# --- three LLVM operations numba does not expose in a form that vectorises ----------------------
+
+
+@intrinsic
+def _bits_to_f32(typingctx: Any, v: Any) -> Any:
+    def codegen(context: Any, builder: Any, signature: Any, args: Any) -> Any:
+        return builder.bitcast(args[0], ir.FloatType())
+
+    return types.float32(types.int32), codegen
+
+
+@intrinsic
+def _max_f32(typingctx: Any, a: Any, b: Any) -> Any:
+    """IEEE maxNum: the larger, and the other operand when one is NaN (NaN never wins)."""
+
+    def codegen(context: Any, builder: Any, signature: Any, args: Any) -> Any:
+        f = ir.FloatType()
+        fn = builder.module.declare_intrinsic("llvm.maxnum", [f], ir.FunctionType(f, [f, f]))
+        return builder.call(fn, args)
+
+    return types.float32(types.float32, types.float32), codegen
+
+
+@intrinsic
+def _floor_at(typingctx: Any, v: Any, low: Any) -> Any:
+    """``low`` if ``v < low`` else ``v``: a NaN stays NaN, so it reaches the sums."""
+
+    def codegen(context: Any, builder: Any, signature: Any, args: Any) -> Any:
+        below = builder.fcmp_ordered("<", args[0], args[1])
+        return builder.select(below, args[1], args[0])
+
+    return types.float32(types.float32, types.float32), codegen
+
+
+# --- the fused pass -----------------------------------------------------------------------------
+
+_LOG2E = np.float32(1.4426950408889634)
+_LN2_HI = np.float32(0.693359375)
+_LN2_LO = np.float32(-2.12194440e-4)
+# Below this, exp underflows float32; clamping there keeps the exponent arithmetic in range.
+_EXP_FLOOR = np.float32(-87.5)
+
+
+@njit(inline="always", fastmath=_VECTOR_MATH)
+def _exp_nonpositive(d: Any) -> Any:
+    """exp(d) in float32 for d <= 0 (relative error about 2e-7; 0 below -87.5; NaN stays NaN).
+
+    Cody-Waite range reduction and the minimax polynomial of the Cephes library's expf: plain
+    arithmetic that LLVM vectorises, where a call to libm's expf would not be.
+    """
+    a = -d * _LOG2E + np.float32(0.5)
+    n = -np.int32(a)  # a >= 0: truncation is rounding to nearest
+    nf = np.float32(n)
+    r = d - nf * _LN2_HI
+    r = r - nf * _LN2_LO
+    p = np.float32(1.9875691500e-4)
+    p = p * r + np.float32(1.3981999507e-3)
+    p = p * r + np.float32(8.3334519073e-3)
+    p = p * r + np.float32(4.1665795894e-2)
+    p = p * r + np.float32(1.6666665459e-1)
+    p = p * r + np.float32(5.0000001201e-1)
+    y = p * r * r + r + np.float32(1.0)
+    return y * _bits_to_f32((n + np.int32(127)) << 23)
+
+
+@njit(inline="always", fastmath=_VECTOR_MATH)
+def _chunk_sums(chunk: Any, top: Any) -> tuple[float, float]:
+    """(sum e, sum e * d) over one chunk, e = exp(d), d = x - top <= 0."""
+    z = np.float32(0.0)
+    s = np.float32(0.0)
+    for i in range(chunk.size):
+        d = _floor_at(chunk[i] - top, _EXP_FLOOR)
+        e = _exp_nonpositive(d)
+        z += e
+        s += e * d
+    return float(z), float(s)
+
+
+@njit(fastmath=_VECTOR_MATH, **_JIT)
+def scan(row: Any, block_max: Any) -> tuple[float, float, float]:
+    """One pass over ``row``: fills ``block_max`` (the maximum of each BLOCK entries) and returns
+    (top, log normaliser, entropy) of the raw softmax. A row with a NaN or +inf entry gives a
+    NaN normaliser; a row with no finite entry gives top = -inf.
+
+    The maximum is kept as a running one: when a chunk raises it, the sums so far are rescaled
+    (z' = k z, s' = k (s + delta z), k = exp(delta), delta = old - new top), so every chunk is
+    read once while it is in L1.
+    """
+    size = row.size
+    top = np.float32(-np.inf)
+    z = 0.0
+    s = 0.0
+    for lo in range(0, size, CHUNK):
+        hi = min(lo + CHUNK, size)
+        chunk_top = np.float32(-np.inf)
+        for b in range(lo // BLOCK, (hi + BLOCK - 1) // BLOCK):
+            block = row[b * BLOCK : min(b * BLOCK + BLOCK, hi)]
+            m = np.float32(-np.inf)
+            for i in range(block.size):
+                m = _max_f32(m, block[i])
+            block_max[b] = m
+            chunk_top = _max_f32(chunk_top, m)
+        if chunk_top > top:
+            if top > -np.inf:
+                delta = float(top) - float(chunk_top)
+                k = math.exp(delta)
+                s = k * (s + delta * z)
+                z = k * z
+            top = chunk_top
+        if top == -np.inf:
+            continue  # every entry so far is -inf: nothing to add
+        dz, ds = _chunk_sums(row[lo:hi], top)
+        z += dz
+        s += ds
+    if top == -np.inf:
+        return -math.inf, math.nan, math.nan
+    if top == np.inf:
+        return math.inf, math.nan, math.nan
+    log_z = math.log(z)
+    return float(top), float(top) + log_z, log_z - s / z
+
+
+# --- cutting a row to candidates ------------------------------------------------------------------
+
+
+@njit(**_JIT)
+def top_positions(row: Any, block_max: Any, m: int) -> Any:
+    """Positions (ascending) of the ``m`` largest finite entries, ties to the lower position.
+
+    The m-th largest block maximum t is a lower bound of the m-th largest entry (m blocks hold
+    an entry >= t), so only blocks whose maximum reaches t can hold the answer: about m blocks.
+    """
+    if m >= block_max.size:
+        found = positions_at_least(row, block_max, np.float32(-np.inf))
+    else:
+        t = np.partition(block_max, block_max.size - m)[block_max.size - m]
+        found = positions_at_least(row, block_max, t)
+    if found.size <= m:
+        return found
+    # Stable sort of -value: among equal values the lower position (gathered first) comes first.
+    order = np.argsort(-row[found], kind="mergesort")[:m]
+    return np.sort(found[order])
+
+
+@njit(**_JIT)
+def positions_at_least(row: Any, block_max: Any, floor: Any) -> Any:
+    """Positions (ascending) of the finite entries >= ``floor``, visiting only the blocks whose
+    maximum reaches it."""
+    floor = max(floor, np.float32(-np.finfo(np.float32).max))  # -inf entries are never kept
+    count = 0
+    for b in range(block_max.size):
+        if block_max[b] >= floor:
+            for i in range(b * BLOCK, min(b * BLOCK + BLOCK, row.size)):
+                count += row[i] >= floor
+    found = np.empty(count, np.int64)
+    count = 0
+    for b in range(block_max.size):
+        if block_max[b] >= floor:
+            for i in range(b * BLOCK, min(b * BLOCK + BLOCK, row.size)):
+                if row[i] >= floor:
+                    found[count] = i
+                    count += 1
+    return found
+
+
+# --- the rules on the candidates (1-D, like ``row``) -----------------------------------------
+
+
+@njit(**_JIT)
+def softmax(w: Any) -> Any:
+    e = np.exp(w - w.max())
+    return e / e.sum()
+
+
+@njit(**_JIT)
+def mass(raw: Any, ids: Any, log_norm: float) -> float:
+    """Raw model mass on ``ids``: the sum of exp(raw - log normaliser), in float64."""
+    total = 0.0
+    for i in ids:
+        total += math.exp(float(raw[i]) - log_norm)
+    return total
+
+
+@njit(**_JIT)
+def _most_probable(ids: Any, w: Any, m: int) -> tuple[Any, Any]:
+    """The ``m`` most probable (ties to the lower id), in id order."""
+    if ids.size <= m:
+        return ids, w
+    at = np.sort(np.argsort(-w, kind="mergesort")[:m])
+    return ids[at], w[at]
+
+
+@njit(**_JIT)
+def _keep(ids: Any, w: Any, keep: Any, min_keep: int) -> tuple[Any, Any]:
+    """Keep where ``keep``, or the ``min_keep`` most probable if that is fewer."""
+    if np.count_nonzero(keep) >= min_keep:
+        return ids[keep], w[keep]
+    return _most_probable(ids, w, min_keep)
+
+
+@njit(**_JIT)
+def _prefix(key: Any, mass: Any, target: float) -> Any:
+    """Mask of the shortest prefix in (key asc, position asc) order with mass >= target (all
+    of it when no prefix reaches it)."""
+    order = np.argsort(key, kind="mergesort")
+    keep = np.ones(key.size, np.bool_)
+    total = 0.0
+    for j in range(order.size):
+        total += mass[order[j]]
+        if total >= target:
+            keep[:] = False
+            keep[order[: j + 1]] = True
+            break
+    return keep
+
+
+@njit(**_JIT)
+def _log_softmax(w: Any) -> Any:
+    shifted = w - w.max()
+    return shifted - math.log(np.exp(shifted).sum())
+
+
+@njit(**_JIT)
+def _apply_edits(ids: Any, w: Any, tokens: Any, kinds: Any, values: Any) -> tuple[Any, Any]:
+    w = w.copy()
+    for j in range(tokens.size):
+        pos = np.searchsorted(ids, tokens[j])
+        if pos >= ids.size or ids[pos] != tokens[j] or w[pos] == -np.inf:
+            continue
+        v = w[pos]
+        if kinds[j] == PENALISE:
+            w[pos] = v / values[j] if v > 0 else v * values[j]
+        elif kinds[j] == SHIFT:
+            w[pos] = v + values[j]
+        else:
+            w[pos] = -np.inf
+    alive = w > -np.inf
+    return ids[alive], w[alive]
+
+
+@njit(**_JIT)
+def apply_stages(
+    ids: Any,
+    w: Any,
+    codes: Any,
+    params: Any,
+    edit_from: Any,
+    edit_tokens: Any,
+    edit_kinds: Any,
+    edit_values: Any,
+    min_keep: int,
+) -> tuple[Any, Any]:
+    """The stages ``codes``/``params`` on candidates (ids ascending, float64 working logits).
+    Edit stage j changes ``edit_tokens[edit_from[j]:edit_from[j + 1]]``."""
+    for j in range(codes.size):
+        if ids.size == 0:
+            break
+        code = codes[j]
+        x = params[j]
+        if code == TEMPERATURE:
+            w = w / x
+        elif code == EDIT:
+            lo, hi = edit_from[j], edit_from[j + 1]
+            ids, w = _apply_edits(ids, w, edit_tokens[lo:hi], edit_kinds[lo:hi], edit_values[lo:hi])
+        elif code == TOP_K:
+            ids, w = _most_probable(ids, w, max(int(x), min_keep))
+        elif code == GREEDY:
+            at = np.argmax(w)  # the first maximum: the lowest id among ties
+            ids, w = ids[at : at + 1], w[at : at + 1]
+        elif code == TOP_P:
+            if x < 1.0:
+                p = softmax(w)
+                ids, w = _keep(ids, w, _prefix(-p, p, x), min_keep)
+        elif code == TYPICAL:
+            if x < 1.0:
+                logp = _log_softmax(w)
+                p = np.exp(logp)
+                entropy = -(p * logp).sum()
+                ids, w = _keep(ids, w, _prefix(np.abs(logp + entropy), p, x), min_keep)
+        elif code == MIN_P:
+            # p_i >= m * p_max  <=>  exp(w_i - w_max) >= m: the normaliser cancels.
+            ids, w = _keep(ids, w, np.exp(w - w.max()) >= x, min_keep)
+        elif code == EPSILON:
+            ids, w = _keep(ids, w, softmax(w) >= x, min_keep)
+        elif code == ETA:
+            logp = _log_softmax(w)
+            p = np.exp(logp)
+            threshold = min(x, math.sqrt(x) * math.exp((p * logp).sum()))
+            ids, w = _keep(ids, w, p >= threshold, min_keep)
+    return ids, w
+
+
+@njit(**_JIT)
+def draw(probs: Any, u: float) -> int:
+    """The first position whose running sum of ``probs`` exceeds u times the whole sum: the
+    inverse CDF of ``core``, with the same sequential running sum."""
+    total = 0.0
+    for j in range(probs.size):
+        total += probs[j]
+    target = u * total
+    cum = 0.0
+    for j in range(probs.size):
+        cum += probs[j]
+        if cum > target:
+            return j
+    return probs.size - 1

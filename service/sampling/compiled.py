@@ -1,32 +1,37 @@
 """The compiled path of ``pick``: a chain as the arrays the kernel reads, and rows decided by it.
 
-``decide`` takes one row through the kernel (``kernel``): the fused pass, the cut to the
-candidates of the chain's first ranking stage (the same lazy prefix as ``full``, with the
-kernel's block-maximum searches), the remaining stages and the draw. It returns None for any
-row it does not decide (invalid entries, nothing left, a chain whose first truncation needs the
-whole distribution), and ``core`` then decides that row on the numpy path.
+``plan_for`` packs a chain into two arrays once (stage codes and numbers, edits flattened;
+edits that read the history are packed per row). ``pick_rows`` takes a batch through the
+kernel (``kernel.pick_rows``: per row the fused pass, the lazy prefix and its cut, the
+remaining stages, the draw) and ``decide`` one row, with its kept set. A row the kernel does
+not decide (invalid entries, nothing left) comes back with its status, and ``core`` decides it
+on the numpy path; ``plan_for`` returns None for chains the kernel does not cut (a first
+truncation that needs the whole distribution: top_p, typical, epsilon, eta; or none at all).
 
 Importing this module imports numba; ``core`` treats an ImportError as "no compiled kernel".
 """
 
 from __future__ import annotations
 
-import math
 from collections import Counter
+from collections.abc import Callable
 from dataclasses import dataclass
 from functools import lru_cache
+from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
 
 from service.sampling import kernel
-from service.sampling.chain import Chain, OccurrencePenalty, RepetitionPenalty, Stage
-from service.sampling.full import EDIT_METHODS, Selection, narrow_row
+from service.sampling.chain import Chain, OccurrencePenalty, RepetitionPenalty, Stage, parse_chain
 
 F32 = NDArray[np.float32]
 F64 = NDArray[np.float64]
 I64 = NDArray[np.int64]
+# codes, params, edit_from, edit_tokens, edit_kinds, edit_values: the kernel's form of stages
+Stages = tuple[I64, F64, I64, I64, I64, F64]
 
+_EDITS = ("repetition_penalty", "occurrence_penalty", "token_bias", "ban")
 _CODES = {
     "temperature": kernel.TEMPERATURE,
     "top_k": kernel.TOP_K,
@@ -36,12 +41,10 @@ _CODES = {
     "epsilon": kernel.EPSILON,
     "eta": kernel.ETA,
     "greedy": kernel.GREEDY,
-} | dict.fromkeys(EDIT_METHODS, kernel.EDIT)
+} | dict.fromkeys(_EDITS, kernel.EDIT)
 # First truncation stages whose candidates a cut can bound without the whole distribution.
 _CUT_BY_RANK = ("top_k", "greedy", "min_p")
-
-
-EditArrays = tuple[I64, I64, I64, F64]
+_HISTORY_EDITS = ("repetition_penalty", "occurrence_penalty")
 
 
 # eq=False: a plan is hashed by identity (``plan_for`` makes one per chain) and holds arrays.
@@ -49,12 +52,11 @@ EditArrays = tuple[I64, I64, I64, F64]
 class Plan:
     """What the kernel needs of a chain, made once per chain."""
 
-    start: int  # the first truncation stage: the cut happens there, the rules apply from there
-    codes: I64  # stage codes from ``start`` on
-    params: F64  # their numbers (0 for edit stages and greedy)
-    edit_stages: tuple[Stage | None, ...]  # per code, the edit stage, else None
+    chain: Chain
+    prefix: tuple[Stage, ...]  # temperatures and edits before the first truncation
+    tail: tuple[Stage, ...]  # the first truncation (top_k, greedy or min_p) and what follows
     needs_history: bool
-    static_edits: EditArrays  # the edits when no stage depends on the history
+    static: tuple[I64, F64]  # the packed chain when no stage reads the history
 
 
 @dataclass(frozen=True)
@@ -70,82 +72,131 @@ class Decided:
     logprob: float
 
 
+@dataclass(frozen=True)
+class Picked:
+    """A batch through ``kernel.pick_rows``: per row, ``status`` (``kernel.DECIDED`` or why
+    not) and the diagnostics of the decided rows."""
+
+    status: I64
+    tokens: I64
+    kept: I64
+    kept_mass: F64
+    entropy: F64
+    prob: F64
+    logprob: F64
+
+
 @lru_cache(maxsize=256)
 def plan_for(chain: Chain) -> Plan | None:
-    """The chain's plan, or None when the kernel cannot cut it (its first truncation is top_p,
-    typical, epsilon or eta, or it has none): those chains take the numpy path."""
-    start = next(
-        (i for i, s in enumerate(chain.stages) if _CODES[s.method] not in (0, kernel.EDIT)),
-        None,
-    )
-    if start is None or chain.stages[start].method not in _CUT_BY_RANK:
+    """The chain's plan, or None when the kernel does not cut it."""
+    start = next((i for i, s in enumerate(chain.stages) if s.method in _CUT_BY_RANK), None)
+    if start is None or any(
+        _CODES[s.method] not in (kernel.TEMPERATURE, kernel.EDIT) for s in chain.stages[:start]
+    ):
         return None
-    tail = chain.stages[start:]
-    params = [0.0 if s.method in EDIT_METHODS or s.method == "greedy" else s.number for s in tail]
-    edit_stages = tuple(s if s.method in EDIT_METHODS else None for s in tail)
+    prefix, tail = chain.stages[:start], chain.stages[start:]
     return Plan(
-        start=start,
-        codes=np.array([_CODES[s.method] for s in tail], np.int64),
-        params=np.array(params, np.float64),
-        edit_stages=edit_stages,
-        needs_history=any(s.method in ("repetition_penalty", "occurrence_penalty") for s in tail),
-        static_edits=_flatten(edit_stages, []),
+        chain=chain,
+        prefix=prefix,
+        tail=tail,
+        needs_history=any(s.method in _HISTORY_EDITS for s in chain.stages),
+        static=_pack(chain.min_keep, prefix, tail, []),
     )
 
 
-def decide(chain: Chain, plan: Plan, raw: F32, history: list[int], u: float) -> Decided | None:
-    block_max = np.empty(-(-raw.size // kernel.BLOCK), np.float32)
-    _, log_norm, entropy = kernel.scan(raw, block_max)
-    if not math.isfinite(log_norm):
-        return None  # NaN or +inf entries, or no finite one: the numpy path says which
-    select = Selection(
-        top=lambda r, m: kernel.top_positions(r, block_max, m),
-        at_least=lambda r, floor: kernel.positions_at_least(r, block_max, np.float32(floor)),
+def packed(plan: Plan, history: list[int]) -> tuple[I64, F64]:
+    """The chain as the kernel reads it (see ``kernel``), for one row's history."""
+    if not plan.needs_history:
+        return plan.static
+    return _pack(plan.chain.min_keep, plan.prefix, plan.tail, history)
+
+
+def decide(plan: Plan, raw: F32, history: list[int], u: float) -> Decided | None:
+    """One row: its kept set and draw, or None when the kernel does not decide it."""
+    ints, floats = packed(plan, history)
+    status, ids, probs, token, prob, kept_mass, entropy, logprob = kernel.decide_row(
+        raw, ints, floats, u
     )
-    ids, w, start = narrow_row(chain, raw, history, select)
-    if start != plan.start:  # cannot happen for a planned chain; the numpy path is the referee
+    if status != kernel.DECIDED:
         return None
-    edit_from, tokens, kinds, values = _edit_arrays(plan, history)
-    ids, w = kernel.apply_stages(
-        ids, w, plan.codes, plan.params, edit_from, tokens, kinds, values, chain.min_keep
+    return Decided(ids, probs, int(token), prob, kept_mass, entropy, logprob)
+
+
+def pick_rows(
+    plan: Plan,
+    rows: F32,
+    histories: list[list[int]],
+    uniforms: F64,
+    parts: Callable[[Callable[[int, int], None], int], None],
+) -> Picked:
+    """A batch through the kernel; ``parts(work, n)`` runs ``work(lo, hi)`` over the rows (in
+    threads: the kernel releases the GIL)."""
+    n = rows.shape[0]
+    if plan.needs_history:
+        ints, floats = _stack([packed(plan, h) for h in histories])
+    else:
+        ints, floats = plan.static[0][None, :], plan.static[1][None, :]
+    out = Picked(
+        status=np.empty(n, np.int64),
+        tokens=np.empty(n, np.int64),
+        kept=np.empty(n, np.int64),
+        kept_mass=np.empty(n),
+        entropy=np.empty(n),
+        prob=np.empty(n),
+        logprob=np.empty(n),
     )
-    if not ids.size:
-        return None
-    probs = kernel.softmax(w)
-    at = kernel.draw(probs, u)
-    token = int(ids[at])
-    # Everything kept is the whole mass by definition; summing would only add rounding.
-    kept_mass = 1.0 if ids.size == raw.size else kernel.mass(raw, ids, log_norm)
-    return Decided(
-        ids=ids,
-        probs=probs,
-        token=token,
-        prob=float(probs[at]),
-        kept_mass=kept_mass,
-        entropy=entropy,
-        logprob=float(raw[token]) - log_norm,
-    )
+
+    def work(lo: int, hi: int) -> None:
+        kernel.pick_rows(
+            rows, lo, hi, ints, floats, uniforms, out.status, out.tokens, out.kept,
+            out.kept_mass, out.entropy, out.prob, out.logprob,
+        )  # fmt: skip
+
+    parts(work, n)
+    return out
 
 
-def _edit_arrays(plan: Plan, history: list[int]) -> EditArrays:
-    """The tail's edits flattened: stage j edits ``tokens[edit_from[j]:edit_from[j + 1]]``.
-    Bans and biases do not depend on the history, so a plan carries them made once."""
-    return _flatten(plan.edit_stages, history) if plan.needs_history else plan.static_edits
+def _stack(packs: list[tuple[I64, F64]]) -> tuple[I64, F64]:
+    """Rows of different lengths, zero-padded: the counts at the head say what is used."""
+    ints = np.zeros((len(packs), max(p[0].size for p in packs)), np.int64)
+    floats = np.zeros((len(packs), max(p[1].size for p in packs)), np.float64)
+    for b, (i, f) in enumerate(packs):
+        ints[b, : i.size] = i
+        floats[b, : f.size] = f
+    return ints, floats
 
 
-def _flatten(edit_stages: tuple[Stage | None, ...], history: list[int]) -> EditArrays:
+def _pack(
+    min_keep: int, prefix: tuple[Stage, ...], tail: tuple[Stage, ...], history: list[int]
+) -> tuple[I64, F64]:
+    pre, post = _arrays(prefix, history), _arrays(tail, history)
+    first = tail[0]
+    head = [min_keep, _CODES[first.method], pre[0].size, pre[3].size, post[0].size, post[3].size]
+    int_parts = (pre[0], pre[2], pre[3], pre[4], post[0], post[2], post[3], post[4])
+    ints = np.concatenate((np.array(head, np.int64), *int_parts))
+    first_param = 0.0 if first.method == "greedy" else first.number
+    floats = np.concatenate([np.array([first_param]), pre[1], pre[5], post[1], post[5]])
+    return ints, floats
+
+
+def _arrays(stages: tuple[Stage, ...], history: list[int]) -> Stages:
+    """Stages in the kernel's form: edit stage j changes ``tokens[edit_from[j]:edit_from[j+1]]``
+    (the arrays form of ``batch.edits_for``)."""
     edit_from = [0]
     tokens: list[int] = []
     kinds: list[int] = []
     values: list[float] = []
-    for stage in edit_stages:
-        if stage is not None:
+    for stage in stages:
+        if stage.method in _EDITS:
             for token, kind, value in _edits(stage, history):
                 tokens.append(token)
                 kinds.append(kind)
                 values.append(value)
         edit_from.append(len(tokens))
+    params = [s.number if s.method in _NUMBERED else 0.0 for s in stages]
     return (
+        np.array([_CODES[s.method] for s in stages], np.int64),
+        np.array(params, np.float64),
         np.array(edit_from, np.int64),
         np.array(tokens, np.int64),
         np.array(kinds, np.int64),
@@ -153,45 +204,38 @@ def _flatten(edit_stages: tuple[Stage | None, ...], history: list[int]) -> EditA
     )
 
 
+_NUMBERED = ("temperature", "top_k", "top_p", "typical", "min_p", "epsilon", "eta")
+
+
 def _edits(stage: Stage, history: list[int]) -> list[tuple[int, int, float]]:
-    """(token, kind, value) of an edit stage: the arrays form of ``batch.edits_for``."""
+    """(token, kind, value) of an edit stage."""
     p = stage.param
     if isinstance(p, RepetitionPenalty):
         recent = history if p.window is None else history[-p.window :]
         return [(t, kernel.PENALISE, p.factor) for t in sorted(set(recent))]
     if isinstance(p, OccurrencePenalty):
         recent = history if p.window is None else history[-p.window :]
-        counts = Counter(recent)
-        return [(t, kernel.SHIFT, -(p.per_use * n + p.present)) for t, n in sorted(counts.items())]
+        counts = sorted(Counter(recent).items())
+        return [(t, kernel.SHIFT, -(p.per_use * n + p.present)) for t, n in counts]
     if stage.method == "token_bias":
         return [(int(t), kernel.SHIFT, float(d)) for t, d in p]  # type: ignore[union-attr]
     return [(t, kernel.REMOVE, 0.0) for t in stage.token_ids]
 
 
+_WARM_UP_CHAINS: tuple[list[dict[str, Any]], ...] = (
+    [{"repetition_penalty": {"factor": 1.2}}, {"temperature": 0.9}, {"top_k": 50}],
+    [{"min_p": 0.05}, {"top_p": 0.9}, {"typical": 0.9}, {"epsilon": 1e-4}, {"eta": 1e-4}],
+    [{"greedy": True}, {"ban": [3]}],
+)
+
+
 def warm_up() -> None:
-    """Compile (or load from numba's cache) every kernel function, on a row small enough to be
-    instant, so that the first real request does not pay for it."""
-    chain_stages = ("top_k", "top_p", "typical", "min_p", "epsilon", "eta", "greedy")
+    """Compile (or load from numba's on-disk cache) every kernel function, on a row small
+    enough to be instant, so that the first real request does not pay for it."""
     raw = np.linspace(-3.0, 3.0, 1000).astype(np.float32)
-    codes = np.array([kernel.TEMPERATURE, kernel.EDIT] + [_CODES[m] for m in chain_stages])
-    params = np.array([0.9, 0.0, 50, 0.9, 0.9, 0.01, 1e-4, 1e-4, 1.0])
-    block_max = np.empty(-(-raw.size // kernel.BLOCK), np.float32)
-    kernel.scan(raw, block_max)
-    ids = kernel.top_positions(raw, block_max, 60)
-    kernel.positions_at_least(raw, block_max, np.float32(2.5))
-    edit_from = np.array([0, 0, 1, 1, 1, 1, 1, 1, 1, 1], np.int64)
-    one = np.array([ids[0]], np.int64)
-    ids, w = kernel.apply_stages(
-        ids,
-        raw[ids].astype(np.float64),
-        codes,
-        params,
-        edit_from,
-        one,
-        np.array([kernel.PENALISE]),
-        np.array([1.2]),
-        1,
-    )
-    probs = kernel.softmax(w)
-    kernel.draw(probs, 0.5)
-    kernel.mass(raw, ids, 1.0)
+    for stages in _WARM_UP_CHAINS:
+        chain = parse_chain(stages)
+        plan = plan_for(chain)
+        assert plan is not None
+        decide(plan, raw, [1, 2, 3], 0.5)
+        pick_rows(plan, raw[None, :], [[1]], np.array([0.5]), lambda work, n: work(0, n))

@@ -163,58 +163,35 @@ def _pick_compiled(
     """Rows through the compiled kernel, in parallel threads for large batches (the kernel
     releases the GIL); the rows it hands back go to the numpy path."""
     assert compiled is not None
-    n = rows.shape[0]
-    decided = _decide_compiled(chain, plan, rows, histories, uniforms, threads)
-    rest = _handed_back(rows, decided)
-    if len(rest) == n:
-        return _pick_numpy(chain, rows, histories, uniforms, seed, threads)
-    tokens = np.empty(n, np.int64)
-    kept = np.empty(n, np.int64)
-    kept_mass = np.empty(n)
-    entropy = np.empty(n)
-    prob = np.empty(n)
-    logprob = np.empty(n)
-    fallback: list[str | None] = [None] * n
-    for b, d in enumerate(decided):
-        if d is not None:
-            tokens[b], prob[b], kept[b] = d.token, d.prob, d.ids.size
-            kept_mass[b], entropy[b], logprob[b] = d.kept_mass, d.entropy, d.logprob
+    workers = _thread_count(threads, rows.size, rows.shape[0])
+    out = compiled.pick_rows(
+        plan, rows, histories, uniforms, lambda work, n: _in_parallel(work, n, workers)
+    )
+    fallback: list[str | None] = [None] * rows.shape[0]
+    rest = _handed_back(rows, out.status != compiled.kernel.DECIDED)
     if rest:
         others = _pick_numpy(
             chain, rows[rest], [histories[b] for b in rest], uniforms[rest], seed, threads
         )
-        tokens[rest], kept[rest], kept_mass[rest] = others.tokens, others.kept, others.kept_mass
-        entropy[rest], prob[rest], logprob[rest] = others.entropy, others.prob, others.logprob
+        out.tokens[rest], out.kept[rest] = others.tokens, others.kept
+        out.kept_mass[rest], out.entropy[rest] = others.kept_mass, others.entropy
+        out.prob[rest], out.logprob[rest] = others.prob, others.logprob
         for i, b in enumerate(rest):
             fallback[b] = others.fallback[i]
-    return PickResult(tokens, kept, kept_mass, entropy, prob, logprob, fallback, seed)
+    return PickResult(
+        out.tokens, out.kept, out.kept_mass, out.entropy, out.prob, out.logprob, fallback, seed
+    )
 
 
-def _decide_compiled(
-    chain: Chain,
-    plan: Plan,
-    rows: F32,
-    histories: list[list[int]],
-    uniforms: F64,
-    threads: int | None,
-) -> list[Decided | None]:
+def _decide_compiled(plan: Plan, rows: F32, histories: list[list[int]]) -> list[Decided | None]:
     assert compiled is not None
-    n = rows.shape[0]
-    decided: list[Decided | None] = [None] * n
-    decide = compiled.decide
-
-    def work(lo: int, hi: int) -> None:
-        for b in range(lo, hi):
-            decided[b] = decide(chain, plan, rows[b], histories[b], float(uniforms[b]))
-
-    _in_parallel(work, n, _thread_count(threads, rows.size, n))
-    return decided
+    return [compiled.decide(plan, rows[b], histories[b], 0.5) for b in range(rows.shape[0])]
 
 
-def _handed_back(rows: F32, decided: list[Decided | None]) -> list[int]:
+def _handed_back(rows: F32, undecided: NDArray[np.bool_]) -> list[int]:
     """The rows the kernel did not decide; a row among them with no finite entry is refused
     here, under its own index (the numpy path would only see its place among these)."""
-    rest = [b for b, d in enumerate(decided) if d is None]
+    rest: list[int] = np.flatnonzero(undecided).tolist()
     for b in rest:
         if not np.isfinite(rows[b]).any():
             raise InputError("no_finite", f"row {b} has no finite logit")
@@ -332,8 +309,8 @@ def final_distribution(
     _check_token_ids(chain, rows.shape[1])
     plan = _plan(chain, kernel)
     if plan is not None:
-        by_kernel = _decide_compiled(chain, plan, rows, histories, np.zeros(rows.shape[0]), 1)
-        rest = _handed_back(rows, by_kernel)
+        by_kernel = _decide_compiled(plan, rows, histories)
+        rest = _handed_back(rows, np.array([d is None for d in by_kernel]))
         out = np.zeros(rows.shape, np.float64)
         for b, d in enumerate(by_kernel):
             if d is not None:

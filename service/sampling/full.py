@@ -12,7 +12,6 @@ float64. The batched rules in ``batch`` then apply that stage and the rest exact
 from __future__ import annotations
 
 import math
-from collections.abc import Callable
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -29,27 +28,9 @@ IntArray = NDArray[np.intp]
 EDIT_METHODS = ("repetition_penalty", "occurrence_penalty", "token_bias", "ban")
 
 
-@dataclass(frozen=True)
-class Selection:
-    """The two vocabulary-wide searches the cut needs: positions of the m largest raw logits
-    (ascending, ties to the lower position), and positions whose raw logit is >= a floor.
-    The numpy ones are the default; the compiled kernel brings its own."""
-
-    top: Callable[[F32, int], IntArray]
-    at_least: Callable[[F32, float], IntArray]
-
-
-def _at_least(raw: F32, floor: float) -> IntArray:
-    return np.flatnonzero(raw >= np.float32(floor))
-
-
-NUMPY_SELECTION = Selection(top=top_positions, at_least=_at_least)
-
-
 @dataclass
 class _Lazy:
     raw: F32
-    select: Selection = NUMPY_SELECTION
     temp: float = 1.0
     edits: dict[int, float] = field(default_factory=dict)
 
@@ -76,7 +57,7 @@ class _Lazy:
 
     def top_superset(self, m: int) -> IntArray:
         """Ids that surely include the ``m`` highest working logits."""
-        raw_ids = self.select.top(self.raw, m + len(self.edits))
+        raw_ids = top_positions(self.raw, m + len(self.edits))
         return _union(raw_ids, self.edited_ids()) if self.edits else raw_ids
 
 
@@ -93,12 +74,10 @@ def _union(a: IntArray, b: IntArray) -> IntArray:
     return ids[fresh]
 
 
-def narrow_row(
-    chain: Chain, raw: F32, history: list[int], select: Selection = NUMPY_SELECTION
-) -> tuple[IntArray, F64, int]:
+def narrow_row(chain: Chain, raw: F32, history: list[int]) -> tuple[IntArray, F64, int]:
     """(candidate ids ascending, their float64 working logits, index of the first stage the
     batched rules must still apply). Removed tokens are not among the candidates."""
-    row = _Lazy(raw, select)
+    row = _Lazy(raw)
     for index, stage in enumerate(chain.stages):
         method = stage.method
         if method == "temperature":
@@ -135,7 +114,7 @@ def _min_p_superset(row: _Lazy, ratio: float) -> IntArray:
     # A generous margin on the float32 comparison; the exact float64 test runs afterwards.
     floor = (w_max + math.log(ratio)) * row.temp
     floor -= 1e-4 * (abs(floor) + 1.0)
-    return _union(row.select.at_least(row.raw, floor), row.edited_ids())
+    return _union(np.flatnonzero(row.raw >= np.float32(floor)), row.edited_ids())
 
 
 def _materialise(row: _Lazy, index: int) -> tuple[IntArray, F64, int]:

@@ -51,8 +51,8 @@ SHIFT = 1  # v + delta
 REMOVE = 2  # -inf
 
 # Block length of the block maxima; a chunk is several blocks and stays in L1 while it is used.
-BLOCK = 64
-CHUNK = 512
+BLOCK = 256
+CHUNK = 1024
 
 _JIT: dict[str, Any] = {"nogil": True, "cache": True, "error_model": "numpy"}
 # Reassociation lets LLVM vectorise the sums; no flag that assumes finite values, because -inf
@@ -99,6 +99,7 @@ def _floor_at(typingctx: Any, v: Any, low: Any) -> Any:
 _LOG2E = np.float32(1.4426950408889634)
 _LN2_HI = np.float32(0.693359375)
 _LN2_LO = np.float32(-2.12194440e-4)
+_LOWEST = np.float32(np.finfo(np.float32).min)
 # Below this, exp underflows float32; clamping there keeps the exponent arithmetic in range.
 _EXP_FLOOR = np.float32(-87.5)
 
@@ -207,20 +208,24 @@ def top_positions(row: Any, block_max: Any, m: int) -> Any:
 @njit(**_JIT)
 def positions_at_least(row: Any, block_max: Any, floor: Any) -> Any:
     """Positions (ascending) of the finite entries >= ``floor``, visiting only the blocks whose
-    maximum reaches it."""
-    floor = max(floor, np.float32(-np.finfo(np.float32).max))  # -inf entries are never kept
+    maximum reaches it. (Loops over a block's slice: indexing the whole row by a computed
+    position costs numba a wrap-around check that keeps LLVM from optimising the loop.)"""
+    floor = max(floor, _LOWEST)  # -inf entries are never kept
     count = 0
     for b in range(block_max.size):
         if block_max[b] >= floor:
-            for i in range(b * BLOCK, min(b * BLOCK + BLOCK, row.size)):
-                count += row[i] >= floor
+            block = row[b * BLOCK : (b + 1) * BLOCK]
+            for i in range(block.size):
+                if block[i] >= floor:
+                    count += 1
     found = np.empty(count, np.int64)
     count = 0
     for b in range(block_max.size):
         if block_max[b] >= floor:
-            for i in range(b * BLOCK, min(b * BLOCK + BLOCK, row.size)):
-                if row[i] >= floor:
-                    found[count] = i
+            block = row[b * BLOCK : (b + 1) * BLOCK]
+            for i in range(block.size):
+                if block[i] >= floor:
+                    found[count] = b * BLOCK + i
                     count += 1
     return found
 
@@ -353,6 +358,90 @@ def apply_stages(
 
 
 @njit(**_JIT)
+def _edited(v: float, kind: int, value: float) -> float:
+    if kind == PENALISE:
+        return v / value if v > 0 else v * value
+    if kind == SHIFT:
+        return v + value
+    return -np.inf
+
+
+@njit(**_JIT)
+def _working(raw: Any, ids: Any, temp: float, edited: Any, values: Any) -> Any:
+    """Working logits of ``ids`` (ascending): raw / temperature, edited ids overwritten."""
+    w = raw[ids].astype(np.float64)
+    if temp != 1.0:
+        w /= temp
+    for k in range(edited.size):
+        pos = np.searchsorted(ids, edited[k])
+        if pos < ids.size and ids[pos] == edited[k]:
+            w[pos] = values[k]
+    return w
+
+
+@njit(**_JIT)
+def _union(a: Any, b: Any) -> Any:
+    return a if b.size == 0 else np.unique(np.concatenate((a, b)))
+
+
+@njit(**_JIT)
+def cut(
+    raw: Any,
+    block_max: Any,
+    codes: Any,
+    params: Any,
+    edit_from: Any,
+    edit_tokens: Any,
+    edit_kinds: Any,
+    edit_values: Any,
+    first_code: int,
+    first_param: float,
+    min_keep: int,
+) -> tuple[Any, Any]:
+    """The lazy prefix of ``full.narrow_row`` (temperatures and edits before the first
+    truncation, kept as a divisor and a few edited ids) and its cut to the candidates of the
+    first truncation (top_k, greedy or min_p): (candidate ids ascending, working logits)."""
+    temp = 1.0
+    edited = np.empty(edit_tokens.size, np.int64)
+    values = np.empty(edit_tokens.size, np.float64)
+    count = 0
+    for j in range(codes.size):
+        if codes[j] == TEMPERATURE:
+            temp *= params[j]
+            values[:count] /= params[j]
+            continue
+        for e in range(edit_from[j], edit_from[j + 1]):
+            token = edit_tokens[e]
+            k = 0
+            while k < count and edited[k] != token:
+                k += 1
+            current = values[k] if k < count else float(raw[token]) / temp
+            edited[k] = token
+            values[k] = _edited(current, edit_kinds[e], edit_values[e])
+            count = max(count, k + 1)
+    edited, values = edited[:count], values[:count]
+    extra = np.sort(edited)
+    if first_code == MIN_P:
+        head = _union(top_positions(raw, block_max, 1 + count), extra)
+        w_max = _working(raw, head, temp, edited, values).max()
+        ids = head
+        if w_max > -np.inf:
+            # A generous margin on the float32 comparison; the exact test runs afterwards.
+            floor = (w_max + math.log(first_param)) * temp
+            floor -= 1e-4 * (abs(floor) + 1.0)
+            ids = _union(positions_at_least(raw, block_max, np.float32(floor)), extra)
+        ids = _union(ids, _union(top_positions(raw, block_max, min_keep + count), extra))
+    else:
+        m = 1 if first_code == GREEDY else max(int(first_param), min_keep)
+        ids = _union(top_positions(raw, block_max, m + count), extra)
+    w = _working(raw, ids, temp, edited, values)
+    if count:  # raw candidates are finite; only an edit (a ban) can remove one
+        alive = w > -np.inf
+        ids, w = ids[alive], w[alive]
+    return ids, w
+
+
+@njit(**_JIT)
 def draw(probs: Any, u: float) -> int:
     """The first position whose running sum of ``probs`` exceeds u times the whole sum: the
     inverse CDF of ``core``, with the same sequential running sum."""
@@ -366,3 +455,93 @@ def draw(probs: Any, u: float) -> int:
         if cum > target:
             return j
     return probs.size - 1
+
+
+# --- whole rows -------------------------------------------------------------------------------
+#
+# A chain reaches the kernel packed into one int64 and one float64 array (``compiled.pack``):
+# numba's dispatcher types every argument on every call, and a dozen small arrays cost more to
+# type than a row's candidate rules cost to run.
+#
+#   ints:   min_keep, first_code, n_prefix, n_prefix_edits, n_tail, n_tail_edits,
+#           prefix codes, prefix edit_from, prefix edit tokens, prefix edit kinds,
+#           tail codes, tail edit_from, tail edit tokens, tail edit kinds
+#   floats: first_param, prefix params, prefix edit values, tail params, tail edit values
+
+HEAD = 6
+
+
+@njit(**_JIT)
+def _unpack(ints: Any, floats: Any) -> Any:
+    n_pre, e_pre, n_tail, e_tail = ints[2], ints[3], ints[4], ints[5]
+    i, f = HEAD, 1
+    codes = ints[i : i + n_pre]
+    i += n_pre
+    edit_from = ints[i : i + n_pre + 1]
+    i += n_pre + 1
+    tokens = ints[i : i + e_pre]
+    kinds = ints[i + e_pre : i + 2 * e_pre]
+    i += 2 * e_pre
+    params = floats[f : f + n_pre]
+    values = floats[f + n_pre : f + n_pre + e_pre]
+    f += n_pre + e_pre
+    prefix = (codes, params, edit_from, tokens, kinds, values)
+    codes = ints[i : i + n_tail]
+    i += n_tail
+    edit_from = ints[i : i + n_tail + 1]
+    i += n_tail + 1
+    tokens = ints[i : i + e_tail]
+    kinds = ints[i + e_tail : i + 2 * e_tail]
+    params = floats[f : f + n_tail]
+    values = floats[f + n_tail : f + n_tail + e_tail]
+    tail = (codes, params, edit_from, tokens, kinds, values)
+    return prefix, tail
+
+
+@njit(**_JIT)
+def decide_row(raw: Any, ints: Any, floats: Any, u: float) -> Any:
+    """One row, start to end: (status, kept ids, their probabilities, token, its probability,
+    kept mass, entropy, raw log-probability of the token). A status other than DECIDED leaves
+    the rest meaningless."""
+    prefix, tail = _unpack(ints, floats)
+    min_keep, first_code, first_param = ints[0], ints[1], floats[0]
+    block_max = np.empty((raw.size + BLOCK - 1) // BLOCK, np.float32)
+    _, log_norm, entropy = scan(raw, block_max)
+    if not math.isfinite(log_norm):
+        return INVALID, np.empty(0, np.int64), np.empty(0), -1, 0.0, 0.0, entropy, 0.0
+    ids, w = cut(raw, block_max, *prefix, first_code, first_param, min_keep)
+    ids, w = apply_stages(ids, w, *tail, min_keep)
+    if ids.size == 0:
+        return EMPTY, ids, np.empty(0), -1, 0.0, 0.0, entropy, 0.0
+    probs = softmax(w)
+    at = draw(probs, u)
+    token = ids[at]
+    # Everything kept is the whole mass by definition; summing would only add rounding.
+    kept_mass = 1.0 if ids.size == raw.size else mass(raw, ids, log_norm)
+    return DECIDED, ids, probs, token, probs[at], kept_mass, entropy, raw[token] - log_norm
+
+
+@njit(**_JIT)
+def pick_rows(
+    rows: Any,
+    lo: int,
+    hi: int,
+    ints: Any,
+    floats: Any,
+    uniforms: Any,
+    status: Any,
+    tokens: Any,
+    kept: Any,
+    kept_mass: Any,
+    entropy: Any,
+    prob: Any,
+    logprob: Any,
+) -> None:
+    """Rows ``lo:hi`` of a batch, each with its own row of ``ints``/``floats`` (or all with the
+    only one), written into the output arrays."""
+    for b in range(lo, hi):
+        plan = min(b, ints.shape[0] - 1)
+        decided = decide_row(rows[b], ints[plan], floats[plan], uniforms[b])
+        status[b] = decided[0]
+        kept[b] = decided[1].size
+        tokens[b], prob[b], kept_mass[b], entropy[b], logprob[b] = decided[3:]

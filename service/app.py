@@ -34,7 +34,15 @@ from service.bodies import (
 )
 from service.guard import Guard
 from service.keys import Identity, load_keyring
-from service.live import Live, arm_shares, load_model, poll_registry, reload_now, settled_model
+from service.live import (
+    Live,
+    arm_shares,
+    load_model,
+    poll_registry,
+    reload_now,
+    settled_model,
+    warm_kernel,
+)
 from service.model import PromptError, PromptTooLong
 from service.problems import Problem
 from service.prompting import Cancelled, PromptRun, StepRecord
@@ -86,13 +94,16 @@ def create_app(settings: Settings | None = None) -> FastAPI:
             loop.add_signal_handler(signal.SIGHUP, lambda: reload_now(live, "signal"))
         poller = asyncio.create_task(poll_registry(live))
         loader = asyncio.create_task(load_model(live))
+        compiler = asyncio.create_task(warm_kernel(live))
         yield
         live.draining = True
         poller.cancel()
-        # The load runs in a worker thread that a cancel cannot stop; wait for it, so that no
-        # onnxruntime thread is still starting when the process exits.
+        # The load and the compile run in worker threads that a cancel cannot stop; wait for
+        # them, so that no onnxruntime or LLVM thread is still starting when the process exits.
         with contextlib.suppress(Exception):
             await loader
+        with contextlib.suppress(Exception):
+            await compiler
 
     app = FastAPI(
         title="keepset",
@@ -156,11 +167,11 @@ def _add_routes(app: FastAPI, live: Live) -> None:
         chain, policy, label, clamped = served.chain, served.policy, served.label, served.clamped
         try:
             args = (chain, rows, data.seed, data.history)
-            threads = live.settings.sampling_threads
+            run = partial(pick, *args, threads=live.settings.sampling_threads, kernel=live.kernel)
             if rows.size <= _INLINE_ELEMENTS:  # a thread hand-off would cost more than it frees
-                out = pick(*args, threads=threads)
+                out = run()
             else:
-                out = await run_in_threadpool(pick, *args, threads=threads)
+                out = await run_in_threadpool(run)
         except InputError as exc:
             raise input_problem(exc) from None
         record_served(live, client, served, out.kept.tolist(), out.entropy.tolist(), out.fallback)
@@ -188,7 +199,9 @@ def _add_routes(app: FastAPI, live: Live) -> None:
         if clamped:
             body["clamped"] = clamped
         shadow = (
-            BackgroundTask(run_shadows, snapshot, route.shadow, rows, data.history, out.seed)
+            BackgroundTask(
+                run_shadows, snapshot, route.shadow, rows, data.history, out.seed, live.kernel
+            )
             if route.shadow
             else None
         )
@@ -219,6 +232,7 @@ def _add_routes(app: FastAPI, live: Live) -> None:
                     stop=policy.stop,
                     keep_logits=bool(route.shadow),
                     cancel=threading.Event(),
+                    kernel=live.kernel,
                 )
             )
         except PromptTooLong as exc:
@@ -319,6 +333,8 @@ def _add_routes(app: FastAPI, live: Live) -> None:
             reasons.append("no policies loaded")
         if live.model_problem is not None:
             reasons.append(live.model_problem)
+        if live.kernel_problem is not None:
+            reasons.append(live.kernel_problem)
         if reasons:
             return JSONResponse(
                 {

@@ -19,6 +19,7 @@ from service import metrics
 from service.keys import KeyRing
 from service.model import Model, ModelError
 from service.registry import RegistrySnapshot, reload_registry
+from service.sampling import Kernel, kernel_available, warm_up
 from service.settings import Settings
 from service.watch import CollapseWatch
 
@@ -41,6 +42,9 @@ class Live:
     # Set once loading has ended either way; prompt requests that arrive earlier wait for it.
     model_settled: asyncio.Event = field(default_factory=asyncio.Event)
     watch: CollapseWatch = field(default_factory=CollapseWatch)
+    # The sampling path; "compiled" only once its warm-up has compiled (or loaded) the kernel.
+    kernel: Kernel = "numpy"
+    kernel_problem: str | None = "the sampling kernel is compiling"
 
 
 def reload_now(live: Live, trigger: str) -> dict[str, Any]:
@@ -78,6 +82,24 @@ async def load_model(live: Live) -> None:
         log.info("model %s loaded from %s", live.model.info.name, folder)
     finally:
         live.model_settled.set()
+
+
+async def warm_kernel(live: Live) -> None:
+    """Compile the sampling kernel (or load it from numba's cache) off the event loop; picks
+    take the numpy path meanwhile, and readiness waits for it. A kernel that cannot be had
+    leaves the numpy path in place, with a log line that says why."""
+    try:
+        if live.settings.sampling_kernel == "compiled":
+            if not kernel_available():
+                log.warning("numba is not installed: sampling takes the numpy path")
+            else:
+                await run_in_threadpool(warm_up)
+                live.kernel = "compiled"
+                log.info("sampling kernel compiled")
+    except Exception:  # a numba or LLVM failure: the numpy path decides the same rows
+        log.exception("the compiled sampling kernel failed to build; using the numpy path")
+    finally:
+        live.kernel_problem = None
 
 
 async def settled_model(live: Live, wait_seconds: float) -> Model | None:

@@ -17,7 +17,7 @@ import numpy as np
 import numpy.typing as npt
 
 from service.model import Continuation, Model
-from service.sampling import Chain, PickResult, fresh_seed, pick
+from service.sampling import Chain, Kernel, PickResult, fresh_seed, pick
 
 
 class Cancelled(Exception):
@@ -63,10 +63,12 @@ class PromptRun:
         stop: Sequence[str] = (),
         keep_logits: bool = False,
         cancel: threading.Event | None = None,
+        kernel: Kernel | None = None,
     ) -> None:
         self.seed = fresh_seed() if seed is None else seed
         self.cancel = cancel
         self.chain = chain
+        self.kernel = kernel
         self.records: list[StepRecord] = []
         self.histories: list[list[int]] = []
         self.logits: list[npt.NDArray[np.float32]] | None = [] if keep_logits else None
@@ -81,7 +83,7 @@ class PromptRun:
             raise Cancelled
         step = len(self._picks)
         history = history[self._skip :]
-        out = pick(self.chain, row, self.seed, [history], first_stream=step)
+        out = pick(self.chain, row, self.seed, [history], first_stream=step, kernel=self.kernel)
         self._picks.append(out)
         if self.logits is not None:
             self.logits.append(row)

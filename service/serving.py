@@ -19,7 +19,7 @@ from service.prompting import PromptRun
 from service.ratio import sample_ratio
 from service.registry import RegistrySnapshot
 from service.routing import Route, choose_arm
-from service.sampling import Chain, InputError, pick
+from service.sampling import Chain, InputError, Kernel, pick
 
 log = logging.getLogger("keepset")
 
@@ -126,7 +126,8 @@ def after_continuation(
     record_served(live, client, served, kept, [r.entropy for r in records], fallback)
     if route.shadow and run.logits:
         rows = np.stack(run.logits[: len(records)])
-        run_shadows(snapshot, route.shadow, rows, run.histories[: len(records)], run.seed)
+        histories = run.histories[: len(records)]
+        run_shadows(snapshot, route.shadow, rows, histories, run.seed, live.kernel)
 
 
 def run_shadows(
@@ -135,11 +136,12 @@ def run_shadows(
     rows: np.ndarray,
     history: list[list[int]] | None,
     seed: int,
+    kernel: Kernel,
 ) -> None:
     """Evaluate shadow policies on the same logits: metrics only, never returned."""
     for ref in shadows:
         try:
-            out = pick(snapshot.chain(ref), rows, seed, history)
+            out = pick(snapshot.chain(ref), rows, seed, history, kernel=kernel)
         except InputError:
             continue  # the shadow cannot take these logits; the served answer stands
         metrics.observe_rows(

@@ -8,6 +8,7 @@ demo keys in ``deploy/demo-keys.yaml`` and the bundled model in ``service/model/
 from __future__ import annotations
 
 from pathlib import Path
+from typing import Literal
 
 from pydantic import Field
 from pydantic_settings import BaseSettings, SettingsConfigDict
@@ -41,6 +42,10 @@ class Settings(BaseSettings):
     reload_poll_seconds: float = Field(default=2.0, ge=0.0, description="0 disables polling")
     model_threads: int = Field(default=1, ge=1, description="onnxruntime intra-op threads")
     sampling_threads: int = Field(default=1, ge=1, description="threads per batch in the sampler")
+    sampling_kernel: Literal["compiled", "numpy"] = Field(
+        default="compiled",
+        description="compiled (numba; numpy when numba is missing) or numpy (the reference path)",
+    )
     collapse_window: int = Field(
         default=200, ge=1, description="served rows per policy version the collapse watch keeps"
     )

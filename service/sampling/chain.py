@@ -11,6 +11,7 @@ from __future__ import annotations
 import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field, replace
+from functools import cached_property
 from typing import Any
 
 
@@ -115,7 +116,7 @@ class Chain:
     def to_spec(self) -> list[dict[str, Any]]:
         return [s.to_spec() for s in self.stages]
 
-    @property
+    @cached_property  # checked on every pick; a frozen chain's answer never changes
     def largest_token_id(self) -> int:
         """The largest id that ban or token_bias names (-1 if none); vocabularies must exceed it."""
         return max((i for s in self.stages for i in s.token_ids), default=-1)

@@ -13,10 +13,10 @@ Importing this module imports numba; ``core`` treats an ImportError as "no compi
 
 from __future__ import annotations
 
+import weakref
 from collections import Counter
 from collections.abc import Callable
 from dataclasses import dataclass
-from functools import lru_cache
 from typing import Any
 
 import numpy as np
@@ -86,9 +86,21 @@ class Picked:
     logprob: F64
 
 
-@lru_cache(maxsize=256)
 def plan_for(chain: Chain) -> Plan | None:
-    """The chain's plan, or None when the kernel does not cut it."""
+    """The chain's plan, or None when the kernel does not cut it; made once per chain object
+    (looked up by identity: hashing a chain on every pick costs more than the lookup)."""
+    known = _PLANS.get(id(chain))
+    if known is not None and known[0]() is chain:
+        return known[1]
+    plan = _plan(chain)
+    _PLANS[id(chain)] = (weakref.ref(chain, lambda _: _PLANS.pop(id(chain), None)), plan)
+    return plan
+
+
+_PLANS: dict[int, tuple[weakref.ref[Chain], Plan | None]] = {}
+
+
+def _plan(chain: Chain) -> Plan | None:
     start = next((i for i, s in enumerate(chain.stages) if s.method in _CUT_BY_RANK), None)
     if start is None or any(
         _CODES[s.method] not in (kernel.TEMPERATURE, kernel.EDIT) for s in chain.stages[:start]
@@ -136,24 +148,14 @@ def pick_rows(
         ints, floats = _stack([packed(plan, h) for h in histories])
     else:
         ints, floats = plan.static[0][None, :], plan.static[1][None, :]
-    out = Picked(
-        status=np.empty(n, np.int64),
-        tokens=np.empty(n, np.int64),
-        kept=np.empty(n, np.int64),
-        kept_mass=np.empty(n),
-        entropy=np.empty(n),
-        prob=np.empty(n),
-        logprob=np.empty(n),
-    )
+    # Two arrays for the kernel to fill (fewer arguments to type on every call), seen as columns.
+    out_ints, out_floats = np.empty((3, n), np.int64), np.empty((4, n))
 
     def work(lo: int, hi: int) -> None:
-        kernel.pick_rows(
-            rows, lo, hi, ints, floats, uniforms, out.status, out.tokens, out.kept,
-            out.kept_mass, out.entropy, out.prob, out.logprob,
-        )  # fmt: skip
+        kernel.pick_rows(rows, lo, hi, ints, floats, uniforms, out_ints, out_floats)
 
     parts(work, n)
-    return out
+    return Picked(*out_ints, *out_floats)
 
 
 def _stack(packs: list[tuple[I64, F64]]) -> tuple[I64, F64]:

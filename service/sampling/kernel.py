@@ -529,19 +529,15 @@ def pick_rows(
     ints: Any,
     floats: Any,
     uniforms: Any,
-    status: Any,
-    tokens: Any,
-    kept: Any,
-    kept_mass: Any,
-    entropy: Any,
-    prob: Any,
-    logprob: Any,
+    out_ints: Any,
+    out_floats: Any,
 ) -> None:
     """Rows ``lo:hi`` of a batch, each with its own row of ``ints``/``floats`` (or all with the
-    only one), written into the output arrays."""
+    only one), written into columns of ``out_ints`` (status, token, kept) and ``out_floats``
+    (kept mass, entropy, prob, logprob)."""
     for b in range(lo, hi):
         plan = min(b, ints.shape[0] - 1)
         decided = decide_row(rows[b], ints[plan], floats[plan], uniforms[b])
-        status[b] = decided[0]
-        kept[b] = decided[1].size
-        tokens[b], prob[b], kept_mass[b], entropy[b], logprob[b] = decided[3:]
+        out_ints[0, b], out_ints[1, b], out_ints[2, b] = decided[0], decided[3], decided[1].size
+        out_floats[0, b], out_floats[1, b] = decided[5], decided[6]
+        out_floats[2, b], out_floats[3, b] = decided[4], decided[7]

@@ -1,0 +1,109 @@
+"""The service and its sampling path: readiness waits for the compiled kernel, both settings of
+KEEPSET_SAMPLING_KERNEL answer the same, and a kernel that cannot be built leaves the numpy
+path serving."""
+
+from __future__ import annotations
+
+import asyncio
+import time
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pytest
+from conftest import ROOT, auth, in_process
+from fastapi.testclient import TestClient
+
+from service import live as live_module
+from service.keys import load_keyring
+from service.live import Live, warm_kernel
+from service.registry import load_registry
+from service.settings import Settings
+
+
+def _ready(client: TestClient, within: float = 60.0) -> int:
+    deadline = time.monotonic() + within
+    while True:
+        r = client.get("/readyz")
+        if r.status_code == 200 or time.monotonic() > deadline:
+            return r.status_code
+        time.sleep(0.05)
+
+
+def _answers(registry: Path, kernel: str) -> list[dict[str, Any]]:
+    rng = np.random.default_rng(11)
+    logits = (rng.standard_normal((3, 5000)) * 3).astype(np.float32)
+    answers = []
+    with in_process(registry, sampling_kernel=kernel) as client:
+        assert _ready(client) == 200
+        assert client.app.state.live.kernel == kernel  # type: ignore[attr-defined]
+        for who, seed in (("usher-desk", 5), ("prompt-book-app", 6), ("programme-desk", 7)):
+            body = {
+                "logits": logits.tolist(),
+                "seed": seed,
+                "routing_key": "row-a",
+                "history": [[1, 2, 2, 40], [], [4999, 7]],
+            }
+            r = client.post("/v1/pick", json=body, headers=auth(who))
+            assert r.status_code == 200, r.text
+            answer = r.json()
+            answer.pop("request_id")
+            answers.append(answer)
+    return answers
+
+
+def test_compiled_and_numpy_settings_answer_the_same(registry: Path) -> None:
+    # usher-desk's chain starts with top_k after a temperature (cut by the kernel); the
+    # prompt-book arms start with a repetition penalty; programme-desk's with an occurrence
+    # penalty; the routing key pins the arm, and history would feed the penalties.
+    compiled = _answers(registry, "compiled")
+    numpy_path = _answers(registry, "numpy")
+    for a, b in zip(compiled, numpy_path, strict=True):
+        rows_a, rows_b = a.pop("rows"), b.pop("rows")
+        assert a == b  # tokens, policy, version, arm, seed: exactly
+        for ra, rb in zip(rows_a, rows_b, strict=True):
+            assert (ra["token"], ra["kept"], ra["fallback"]) == (
+                rb["token"],
+                rb["kept"],
+                rb["fallback"],
+            )
+            # The numpy path sums the raw softmax in float32, the kernel in float64 chunks.
+            for field in ("prob", "logprob", "entropy", "kept_mass"):
+                assert ra[field] == pytest.approx(rb[field], rel=1e-5, abs=1e-7), field
+
+
+def _live(registry: Path, **settings: Any) -> Live:
+    options = Settings(policies=registry, keys=ROOT / "deploy" / "demo-keys.yaml", **settings)
+    return Live(settings=options, snapshot=load_registry(registry), keys=load_keyring(options.keys))
+
+
+def test_readiness_waits_for_the_kernel(registry: Path) -> None:
+    live = _live(registry)
+    assert live.kernel == "numpy" and live.kernel_problem is not None  # until the warm-up
+    asyncio.run(warm_kernel(live))
+    assert live.kernel == "compiled" and live.kernel_problem is None
+    with in_process(registry) as client:
+        assert _ready(client) == 200
+        client.app.state.live.kernel_problem = "the sampling kernel is compiling"  # type: ignore[attr-defined]
+        r = client.get("/readyz")
+        assert r.status_code == 503 and "compiling" in r.json()["detail"]
+
+
+def test_a_kernel_that_fails_to_build_leaves_numpy_serving(
+    registry: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    def broken() -> None:
+        raise RuntimeError("LLVM could not compile")
+
+    monkeypatch.setattr(live_module, "warm_up", broken)
+    live = _live(registry)
+    asyncio.run(warm_kernel(live))
+    assert live.kernel == "numpy" and live.kernel_problem is None
+
+
+def test_numpy_setting_never_compiles(registry: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    calls: list[int] = []
+    monkeypatch.setattr(live_module, "warm_up", lambda: calls.append(1))
+    live = _live(registry, sampling_kernel="numpy")
+    asyncio.run(warm_kernel(live))
+    assert calls == [] and live.kernel == "numpy" and live.kernel_problem is None

@@ -10,7 +10,7 @@ import base64
 import binascii
 import json
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, Literal
 
 import numpy as np
 import orjson
@@ -35,6 +35,9 @@ class PickBody(BaseModel):
     # would cost more than the sampling.
     logits: Any = None
     logits_npy: str | None = Field(default=None, description="base64 of .npy bytes")
+    logits_dtype: Literal["bfloat16"] | None = Field(
+        default=None, description="what the uint16 array of logits_npy holds"
+    )
     history: list[list[StrictInt]] | None = None
     seed: StrictInt | None = Field(default=None, ge=0, lt=2**64)
     routing_key: str | None = Field(default=None, max_length=512)
@@ -91,12 +94,14 @@ async def pick_input(request: Request, live: Live) -> PickInput:
         raise Problem(400, "malformed", validation_text(exc)) from None
     if (parsed.logits is None) == (parsed.logits_npy is None):
         raise Problem(400, "malformed", "send exactly one of 'logits' and 'logits_npy'")
+    if parsed.logits_dtype is not None and parsed.logits_npy is None:
+        raise Problem(400, "malformed", "'logits_dtype' describes 'logits_npy'; send it with that")
     if parsed.logits_npy is not None:
         try:
             raw = base64.b64decode(parsed.logits_npy, validate=True)
         except (binascii.Error, ValueError):
             raise Problem(400, "malformed", "logits_npy is not valid base64") from None
-        logits = _npy(raw)
+        logits = _npy(raw, parsed.logits_dtype)
     else:
         logits = _json_logits(parsed.logits)
     return PickInput(logits, parsed.history, parsed.seed, parsed.routing_key, parsed.adjust)
@@ -118,16 +123,24 @@ def _json_logits(values: Any) -> np.ndarray:
         ) from None
 
 
-def _npy(data: bytes) -> np.ndarray:
+def _npy(data: bytes, declared: str | None = None) -> np.ndarray:
     try:
-        return read_npy(data)
+        return read_npy(data, declared)
     except NpyError as exc:
         status = 415 if exc.kind == "dtype" else 400
         raise Problem(status, f"npy-{exc.kind}", str(exc)) from None
 
 
 def _npy_input(body: bytes, query: dict[str, str]) -> PickInput:
-    logits = _npy(body)
+    declared = query.pop("dtype", None)
+    if declared not in (None, "bfloat16"):
+        raise Problem(
+            400,
+            "malformed-query",
+            f"dtype may only be bfloat16 (float32 and float16 are read from the .npy header), "
+            f"got {declared[:32]!r}",
+        )
+    logits = _npy(body, declared)
     seed = query.pop("seed", None)
     routing_key = query.pop("routing_key", None)
     history_text = query.pop("history", None)

@@ -22,6 +22,8 @@ from service.live import Live
 from service.npy import NpyError, read_npy
 from service.problems import Problem
 from service.sampling import InputError, as_batch
+from service.settings import Settings
+from service.shm import MappedLogits, ShmRef, read_segment
 
 NPY_MEDIA = "application/x-npy"
 
@@ -38,6 +40,7 @@ class PickBody(BaseModel):
     logits_dtype: Literal["bfloat16"] | None = Field(
         default=None, description="what the uint16 array of logits_npy holds"
     )
+    logits_shm: ShmRef | None = Field(default=None, description="a shared-memory segment")
     history: list[list[StrictInt]] | None = None
     seed: StrictInt | None = Field(default=None, ge=0, lt=2**64)
     routing_key: str | None = Field(default=None, max_length=512)
@@ -66,6 +69,15 @@ class PickInput:
     seed: int | None
     routing_key: str | None
     adjust: dict[str, float]
+    # Set when ``logits`` views a shared-memory segment: release() unmaps it.
+    mapped: MappedLogits | None = None
+
+    def release(self) -> None:
+        """Drop the logits; a shared-memory view must not be touched after this."""
+        self.logits = np.empty((0, 0), np.float32)
+        if self.mapped is not None:
+            self.mapped.close()
+            self.mapped = None
 
 
 async def pick_input(request: Request, live: Live) -> PickInput:
@@ -92,11 +104,25 @@ async def pick_input(request: Request, live: Live) -> PickInput:
         parsed = PickBody.model_validate(data)
     except ValidationError as exc:
         raise Problem(400, "malformed", validation_text(exc)) from None
-    if (parsed.logits is None) == (parsed.logits_npy is None):
-        raise Problem(400, "malformed", "send exactly one of 'logits' and 'logits_npy'")
+    given = [
+        parsed.logits is not None,
+        parsed.logits_npy is not None,
+        parsed.logits_shm is not None,
+    ]
+    if sum(given) != 1:
+        raise Problem(
+            400, "malformed", "send exactly one of 'logits', 'logits_npy' and 'logits_shm'"
+        )
     if parsed.logits_dtype is not None and parsed.logits_npy is None:
         raise Problem(400, "malformed", "'logits_dtype' describes 'logits_npy'; send it with that")
-    if parsed.logits_npy is not None:
+    mapped = None
+    if parsed.logits_shm is not None:
+        settings = live.settings
+        mapped = read_segment(
+            parsed.logits_shm, settings.shm_dir, lambda b, v: check_shape(b, v, settings)
+        )
+        logits = mapped.logits
+    elif parsed.logits_npy is not None:
         try:
             raw = base64.b64decode(parsed.logits_npy, validate=True)
         except (binascii.Error, ValueError):
@@ -104,7 +130,7 @@ async def pick_input(request: Request, live: Live) -> PickInput:
         logits = _npy(raw, parsed.logits_dtype)
     else:
         logits = _json_logits(parsed.logits)
-    return PickInput(logits, parsed.history, parsed.seed, parsed.routing_key, parsed.adjust)
+    return PickInput(logits, parsed.history, parsed.seed, parsed.routing_key, parsed.adjust, mapped)
 
 
 def validation_text(exc: ValidationError) -> str:
@@ -160,17 +186,19 @@ def _npy_input(body: bytes, query: dict[str, str]) -> PickInput:
 def check_limits(logits: np.ndarray, live: Live) -> np.ndarray:
     rows = as_batch(logits) if logits.ndim != 2 else logits
     b, v = rows.shape
-    if b > live.settings.max_rows:
-        raise Problem(
-            413, "too-many-rows", f"{b} rows is over KEEPSET_MAX_ROWS={live.settings.max_rows}"
-        )
-    if v > live.settings.max_vocab:
-        raise Problem(
-            413,
-            "vocab-too-large",
-            f"vocabulary {v} is over KEEPSET_MAX_VOCAB={live.settings.max_vocab}",
-        )
+    check_shape(b, v, live.settings)
     return rows
+
+
+def check_shape(b: int, v: int, settings: Settings) -> None:
+    if b > settings.max_rows:
+        raise Problem(
+            413, "too-many-rows", f"{b} rows is over KEEPSET_MAX_ROWS={settings.max_rows}"
+        )
+    if v > settings.max_vocab:
+        raise Problem(
+            413, "vocab-too-large", f"vocabulary {v} is over KEEPSET_MAX_VOCAB={settings.max_vocab}"
+        )
 
 
 _INPUT_STATUS = {

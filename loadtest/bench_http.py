@@ -213,6 +213,12 @@ def row(vocab: int, workers: int, name: str, lat: dict[str, float], rps: float) 
     )
 
 
+def write_results(out: Path, results: list[dict[str, Any]]) -> None:
+    out.parent.mkdir(parents=True, exist_ok=True)
+    out.write_text(json.dumps({"cpus": os.cpu_count(), "results": results}, indent=2) + "\n")
+    print(f"wrote {out}")
+
+
 def main() -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--quick", action="store_true")
@@ -253,9 +259,7 @@ def main() -> int:
                     print(row(vocab, workers, name, lat, rps))
             finally:
                 stop(server)
-    args.out.parent.mkdir(parents=True, exist_ok=True)
-    args.out.write_text(json.dumps({"cpus": os.cpu_count(), "results": results}, indent=2) + "\n")
-    print(f"wrote {args.out}")
+    write_results(args.out, results)
     return 0
 
 

@@ -17,7 +17,6 @@ and Unix sockets in a temporary folder only, with one worker each; everything is
 from __future__ import annotations
 
 import argparse
-import json
 import os
 import shutil
 import statistics
@@ -29,7 +28,7 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-from bench_http import KEY, in_process_ms, start_floor, start_keepset, stop
+from bench_http import KEY, in_process_ms, start_floor, start_keepset, stop, write_results
 
 from service.client import Client
 
@@ -142,9 +141,7 @@ def main() -> int:
         f"{repeats} repeats x {steps} steps, {time.monotonic() - started:.0f} s, "
         f"{os.cpu_count()} CPUs"
     )
-    args.out.parent.mkdir(parents=True, exist_ok=True)
-    args.out.write_text(json.dumps({"cpus": os.cpu_count(), "results": results}, indent=2) + "\n")
-    print(f"wrote {args.out}")
+    write_results(args.out, results)
     return 0
 
 

@@ -36,13 +36,32 @@ def free_port() -> int:
         return int(s.getsockname()[1])
 
 
-def wait_ready(port: int, path: str, process: subprocess.Popen[bytes]) -> None:
+class UnixConnection(http.client.HTTPConnection):
+    """http.client over a Unix domain socket."""
+
+    def __init__(self, path: Path, timeout: float = 10):
+        super().__init__("localhost", timeout=timeout)
+        self.path = path
+
+    def connect(self) -> None:
+        self.sock = socket.socket(socket.AF_UNIX, socket.SOCK_STREAM)
+        self.sock.settimeout(self.timeout)
+        self.sock.connect(str(self.path))
+
+
+def wait_ready(
+    port: int, path: str, process: subprocess.Popen[bytes], uds: Path | None = None
+) -> None:
     deadline = time.monotonic() + 30
     while time.monotonic() < deadline:
         if process.poll() is not None:
             raise RuntimeError("server exited")
         try:
-            conn = http.client.HTTPConnection("127.0.0.1", port, timeout=1)
+            conn = (
+                UnixConnection(uds, timeout=1)
+                if uds is not None
+                else http.client.HTTPConnection("127.0.0.1", port, timeout=1)
+            )
             conn.request("GET", path)
             if conn.getresponse().status in (200, 404):
                 return
@@ -72,8 +91,16 @@ def start_keepset(workers: int, **settings: str) -> tuple[subprocess.Popen[bytes
     return proc, port
 
 
-def start_floor(workers: int) -> tuple[subprocess.Popen[bytes], int]:
+def start_floor(
+    workers: int, uds: Path | None = None, shm_dir: Path | None = None
+) -> tuple[subprocess.Popen[bytes], int]:
+    """The floor app on a free loopback port, or on the Unix socket ``uds``; ``shm_dir`` is the
+    folder it maps segments from."""
     port = free_port()
+    where = ["--uds", str(uds)] if uds is not None else ["--host", "127.0.0.1", "--port", str(port)]
+    env = {**os.environ, "PYTHONPATH": str(ROOT)}
+    if shm_dir is not None:
+        env["KEEPSET_SHM_DIR"] = str(shm_dir)
     proc = subprocess.Popen(
         [
             sys.executable,
@@ -82,10 +109,7 @@ def start_floor(workers: int) -> tuple[subprocess.Popen[bytes], int]:
             "floor_app:app",
             "--app-dir",
             str(ROOT / "loadtest"),
-            "--host",
-            "127.0.0.1",
-            "--port",
-            str(port),
+            *where,
             "--workers",
             str(workers),
             "--loop",
@@ -95,10 +119,11 @@ def start_floor(workers: int) -> tuple[subprocess.Popen[bytes], int]:
             "--log-level",
             "warning",
         ],
+        env=env,
         stdout=subprocess.DEVNULL,
         stderr=subprocess.DEVNULL,
     )
-    wait_ready(port, "/", proc)
+    wait_ready(port, "/", proc, uds)
     return proc, port
 
 
@@ -166,14 +191,15 @@ def npy_bytes(array: np.ndarray) -> bytes:
     return buffer.getvalue()
 
 
-def in_process_ms(logits: np.ndarray) -> float:
+def in_process_ms(logits: np.ndarray, count: int = 200) -> float:
+    """Median ms of ``pick`` with box-office@1's chain (what KEY is routed to) on ``logits``."""
     from service.registry import load_registry
     from service.sampling import pick
 
     chain = load_registry(ROOT / "policies").chain(("box-office", 1))
     pick(chain, logits, seed=1)
     times = []
-    for _ in range(200):
+    for _ in range(count):
         t0 = time.perf_counter()
         pick(chain, logits, seed=1)
         times.append(time.perf_counter() - t0)
@@ -185,6 +211,12 @@ def row(vocab: int, workers: int, name: str, lat: dict[str, float], rps: float) 
         f"{vocab:>7} {workers:>7} {name:>10} {lat['p50_ms']:>8.3f} {lat['p99_ms']:>8.3f} "
         f"{rps:>8.0f}"
     )
+
+
+def write_results(out: Path, results: list[dict[str, Any]]) -> None:
+    out.parent.mkdir(parents=True, exist_ok=True)
+    out.write_text(json.dumps({"cpus": os.cpu_count(), "results": results}, indent=2) + "\n")
+    print(f"wrote {out}")
 
 
 def main() -> int:
@@ -227,9 +259,7 @@ def main() -> int:
                     print(row(vocab, workers, name, lat, rps))
             finally:
                 stop(server)
-    args.out.parent.mkdir(parents=True, exist_ok=True)
-    args.out.write_text(json.dumps({"cpus": os.cpu_count(), "results": results}, indent=2) + "\n")
-    print(f"wrote {args.out}")
+    write_results(args.out, results)
     return 0
 
 

@@ -1,21 +1,62 @@
-"""The transport floor for the HTTP benchmark: a bare ASGI app that reads the request body and
-answers a tiny JSON, served by the same uvicorn (httptools, uvloop) as keepset."""
+"""The transport floor for the HTTP benchmarks: a bare ASGI app that reads the request body and
+answers a fixed pick-shaped JSON (so keepset's own client can call it), served by the same
+uvicorn (httptools, uvloop) as keepset, on TCP or a Unix socket (uvicorn's ``--uds``).
+
+A JSON body with ``logits_shm`` is treated as keepset treats it: the segment named in
+``KEEPSET_SHM_DIR`` is mapped and viewed (keepset's own reader), then closed.
+"""
 
 from __future__ import annotations
 
+import os
+from pathlib import Path
 from typing import Any
+
+import orjson
+
+from service.shm import ShmRef, read_segment
+
+_SHM_DIR = Path(os.environ["KEEPSET_SHM_DIR"]) if os.environ.get("KEEPSET_SHM_DIR") else None
+_REPLY = orjson.dumps(
+    {
+        "request_id": "floor",
+        "client": "floor",
+        "policy": "floor",
+        "version": 0,
+        "arm": "floor",
+        "seed": 0,
+        "tokens": [0],
+        "rows": [
+            {
+                "token": 0,
+                "prob": 1.0,
+                "logprob": 0.0,
+                "entropy": 0.0,
+                "kept": 1,
+                "kept_mass": 1.0,
+                "fallback": None,
+            }
+        ],
+    }
+)
+
+
+def _no_limits(rows: int, vocab: int) -> None:
+    return None
 
 
 async def app(scope: dict[str, Any], receive: Any, send: Any) -> None:
     if scope["type"] != "http":
         return
-    size = 0
+    chunks = []
     more = True
     while more:
         message = await receive()
-        size += len(message.get("body", b""))
+        chunks.append(message.get("body", b""))
         more = message.get("more_body", False)
-    body = b'{"bytes": %d}' % size
+    if dict(scope["headers"]).get(b"content-type", b"").startswith(b"application/json"):
+        ref = ShmRef.model_validate(orjson.loads(b"".join(chunks))["logits_shm"])
+        read_segment(ref, _SHM_DIR, _no_limits).close()
     await send(
         {
             "type": "http.response.start",
@@ -23,4 +64,4 @@ async def app(scope: dict[str, Any], receive: Any, send: Any) -> None:
             "headers": [(b"content-type", b"application/json")],
         }
     )
-    await send({"type": "http.response.body", "body": body})
+    await send({"type": "http.response.body", "body": _REPLY})

@@ -27,6 +27,7 @@ from starlette.responses import Response
 
 from service import metrics, problems
 from service.bodies import (
+    PickInput,
     check_limits,
     continue_input,
     input_problem,
@@ -46,7 +47,8 @@ from service.live import (
 from service.model import PromptError, PromptTooLong
 from service.problems import Problem
 from service.prompting import Cancelled, PromptRun, StepRecord
-from service.registry import load_registry
+from service.registry import RegistrySnapshot, load_registry
+from service.routing import Route
 from service.sampling import InputError, pick
 from service.serving import (
     after_continuation,
@@ -75,6 +77,8 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     snapshot = load_registry(settings.policies)
     if settings.collapse_min_steps > settings.collapse_window:
         raise ValueError("KEEPSET_COLLAPSE_MIN_STEPS must not exceed KEEPSET_COLLAPSE_WINDOW")
+    if settings.shm_dir is not None and not settings.shm_dir.is_dir():
+        raise ValueError(f"KEEPSET_SHM_DIR={settings.shm_dir} is not a folder")
     live = Live(
         settings=settings,
         snapshot=snapshot,
@@ -162,50 +166,12 @@ def _add_routes(app: FastAPI, live: Live) -> None:
         snapshot = live.snapshot  # one registry for the whole request
         route = route_of(snapshot, client)
         data = await pick_input(request, live)
-        rows = check_limits(data.logits, live)
-        served = serve(snapshot, client, route, data.routing_key, data.adjust, live)
-        chain, policy, label, clamped = served.chain, served.policy, served.label, served.clamped
         try:
-            args = (chain, rows, data.seed, data.history)
-            run = partial(pick, *args, threads=live.settings.sampling_threads, kernel=live.kernel)
-            if rows.size <= _INLINE_ELEMENTS:  # a thread hand-off would cost more than it frees
-                out = run()
-            else:
-                out = await run_in_threadpool(run)
-        except InputError as exc:
-            raise input_problem(exc) from None
-        record_served(live, client, served, out.kept.tolist(), out.entropy.tolist(), out.fallback)
-        body: dict[str, Any] = {
-            "request_id": uuid.uuid4().hex,
-            "client": client,
-            "policy": policy.name,
-            "version": policy.version,
-            "arm": label,
-            "seed": out.seed,
-            "tokens": out.tokens.tolist(),
-            "rows": [
-                {
-                    "token": int(out.tokens[b]),
-                    "prob": float(out.prob[b]),
-                    "logprob": float(out.logprob[b]),
-                    "entropy": float(out.entropy[b]),
-                    "kept": int(out.kept[b]),
-                    "kept_mass": float(out.kept_mass[b]),
-                    "fallback": out.fallback[b],
-                }
-                for b in range(out.tokens.size)
-            ],
-        }
-        if clamped:
-            body["clamped"] = clamped
-        shadow = (
-            BackgroundTask(
-                run_shadows, snapshot, route.shadow, rows, data.history, out.seed, live.kernel
-            )
-            if route.shadow
-            else None
-        )
-        return JSONResponse(body, background=shadow)
+            return await _pick_answer(live, client, snapshot, route, data)
+        finally:
+            # _pick_answer's frame, which held the other references to a shared-memory view,
+            # has ended: the mapping can close now.
+            data.release()
 
     @app.post("/v1/continue", summary="Prompt in, a continuation with per-step diagnostics out")
     async def continue_prompt(request: Request) -> Response:
@@ -347,6 +313,58 @@ def _add_routes(app: FastAPI, live: Live) -> None:
                 media_type=problems.MEDIA_TYPE,
             )
         return JSONResponse({"status": "ready", "policies": live.snapshot.policy_count()})
+
+
+async def _pick_answer(
+    live: Live, client: str, snapshot: RegistrySnapshot, route: Route, data: PickInput
+) -> Response:
+    """Pick for ``data`` under the client's route and answer; every array reference to the
+    request's logits ends with this frame, except what the shadows get."""
+    rows = check_limits(data.logits, live)
+    served = serve(snapshot, client, route, data.routing_key, data.adjust, live)
+    chain, policy, label, clamped = served.chain, served.policy, served.label, served.clamped
+    try:
+        args = (chain, rows, data.seed, data.history)
+        run = partial(pick, *args, threads=live.settings.sampling_threads, kernel=live.kernel)
+        if rows.size <= _INLINE_ELEMENTS:  # a thread hand-off would cost more than it frees
+            out = run()
+        else:
+            out = await run_in_threadpool(run)
+    except InputError as exc:
+        raise input_problem(exc) from None
+    record_served(live, client, served, out.kept.tolist(), out.entropy.tolist(), out.fallback)
+    body: dict[str, Any] = {
+        "request_id": uuid.uuid4().hex,
+        "client": client,
+        "policy": policy.name,
+        "version": policy.version,
+        "arm": label,
+        "seed": out.seed,
+        "tokens": out.tokens.tolist(),
+        "rows": [
+            {
+                "token": int(out.tokens[b]),
+                "prob": float(out.prob[b]),
+                "logprob": float(out.logprob[b]),
+                "entropy": float(out.entropy[b]),
+                "kept": int(out.kept[b]),
+                "kept_mass": float(out.kept_mass[b]),
+                "fallback": out.fallback[b],
+            }
+            for b in range(out.tokens.size)
+        ],
+    }
+    if clamped:
+        body["clamped"] = clamped
+    shadow = None
+    if route.shadow:
+        # Shadows run after the answer, when the caller may already be writing its next step
+        # into the segment: they get their own copy of shared-memory rows.
+        shadow_rows = rows.copy() if data.mapped is not None and data.mapped.shared else rows
+        shadow = BackgroundTask(
+            run_shadows, snapshot, route.shadow, shadow_rows, data.history, out.seed, live.kernel
+        )
+    return JSONResponse(body, background=shadow)
 
 
 async def _cancel_on_disconnect(request: Request, run: PromptRun) -> None:

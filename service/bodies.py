@@ -10,7 +10,7 @@ import base64
 import binascii
 import json
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, Literal
 
 import numpy as np
 import orjson
@@ -22,6 +22,8 @@ from service.live import Live
 from service.npy import NpyError, read_npy
 from service.problems import Problem
 from service.sampling import InputError, as_batch
+from service.settings import Settings
+from service.shm import MappedLogits, ShmRef, read_segment
 
 NPY_MEDIA = "application/x-npy"
 
@@ -35,6 +37,10 @@ class PickBody(BaseModel):
     # would cost more than the sampling.
     logits: Any = None
     logits_npy: str | None = Field(default=None, description="base64 of .npy bytes")
+    logits_dtype: Literal["bfloat16"] | None = Field(
+        default=None, description="what the uint16 array of logits_npy holds"
+    )
+    logits_shm: ShmRef | None = Field(default=None, description="a shared-memory segment")
     history: list[list[StrictInt]] | None = None
     seed: StrictInt | None = Field(default=None, ge=0, lt=2**64)
     routing_key: str | None = Field(default=None, max_length=512)
@@ -63,6 +69,15 @@ class PickInput:
     seed: int | None
     routing_key: str | None
     adjust: dict[str, float]
+    # Set when ``logits`` views a shared-memory segment: release() unmaps it.
+    mapped: MappedLogits | None = None
+
+    def release(self) -> None:
+        """Drop the logits; a shared-memory view must not be touched after this."""
+        self.logits = np.empty((0, 0), np.float32)
+        if self.mapped is not None:
+            self.mapped.close()
+            self.mapped = None
 
 
 async def pick_input(request: Request, live: Live) -> PickInput:
@@ -89,17 +104,33 @@ async def pick_input(request: Request, live: Live) -> PickInput:
         parsed = PickBody.model_validate(data)
     except ValidationError as exc:
         raise Problem(400, "malformed", validation_text(exc)) from None
-    if (parsed.logits is None) == (parsed.logits_npy is None):
-        raise Problem(400, "malformed", "send exactly one of 'logits' and 'logits_npy'")
-    if parsed.logits_npy is not None:
+    given = [
+        parsed.logits is not None,
+        parsed.logits_npy is not None,
+        parsed.logits_shm is not None,
+    ]
+    if sum(given) != 1:
+        raise Problem(
+            400, "malformed", "send exactly one of 'logits', 'logits_npy' and 'logits_shm'"
+        )
+    if parsed.logits_dtype is not None and parsed.logits_npy is None:
+        raise Problem(400, "malformed", "'logits_dtype' describes 'logits_npy'; send it with that")
+    mapped = None
+    if parsed.logits_shm is not None:
+        settings = live.settings
+        mapped = read_segment(
+            parsed.logits_shm, settings.shm_dir, lambda b, v: check_shape(b, v, settings)
+        )
+        logits = mapped.logits
+    elif parsed.logits_npy is not None:
         try:
             raw = base64.b64decode(parsed.logits_npy, validate=True)
         except (binascii.Error, ValueError):
             raise Problem(400, "malformed", "logits_npy is not valid base64") from None
-        logits = _npy(raw)
+        logits = _npy(raw, parsed.logits_dtype)
     else:
         logits = _json_logits(parsed.logits)
-    return PickInput(logits, parsed.history, parsed.seed, parsed.routing_key, parsed.adjust)
+    return PickInput(logits, parsed.history, parsed.seed, parsed.routing_key, parsed.adjust, mapped)
 
 
 def validation_text(exc: ValidationError) -> str:
@@ -118,16 +149,24 @@ def _json_logits(values: Any) -> np.ndarray:
         ) from None
 
 
-def _npy(data: bytes) -> np.ndarray:
+def _npy(data: bytes, declared: str | None = None) -> np.ndarray:
     try:
-        return read_npy(data)
+        return read_npy(data, declared)
     except NpyError as exc:
         status = 415 if exc.kind == "dtype" else 400
         raise Problem(status, f"npy-{exc.kind}", str(exc)) from None
 
 
 def _npy_input(body: bytes, query: dict[str, str]) -> PickInput:
-    logits = _npy(body)
+    declared = query.pop("dtype", None)
+    if declared not in (None, "bfloat16"):
+        raise Problem(
+            400,
+            "malformed-query",
+            f"dtype may only be bfloat16 (float32 and float16 are read from the .npy header), "
+            f"got {declared[:32]!r}",
+        )
+    logits = _npy(body, declared)
     seed = query.pop("seed", None)
     routing_key = query.pop("routing_key", None)
     history_text = query.pop("history", None)
@@ -147,17 +186,19 @@ def _npy_input(body: bytes, query: dict[str, str]) -> PickInput:
 def check_limits(logits: np.ndarray, live: Live) -> np.ndarray:
     rows = as_batch(logits) if logits.ndim != 2 else logits
     b, v = rows.shape
-    if b > live.settings.max_rows:
-        raise Problem(
-            413, "too-many-rows", f"{b} rows is over KEEPSET_MAX_ROWS={live.settings.max_rows}"
-        )
-    if v > live.settings.max_vocab:
-        raise Problem(
-            413,
-            "vocab-too-large",
-            f"vocabulary {v} is over KEEPSET_MAX_VOCAB={live.settings.max_vocab}",
-        )
+    check_shape(b, v, live.settings)
     return rows
+
+
+def check_shape(b: int, v: int, settings: Settings) -> None:
+    if b > settings.max_rows:
+        raise Problem(
+            413, "too-many-rows", f"{b} rows is over KEEPSET_MAX_ROWS={settings.max_rows}"
+        )
+    if v > settings.max_vocab:
+        raise Problem(
+            413, "vocab-too-large", f"vocabulary {v} is over KEEPSET_MAX_VOCAB={settings.max_vocab}"
+        )
 
 
 _INPUT_STATUS = {

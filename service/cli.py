@@ -191,6 +191,8 @@ def _keys_add(args: argparse.Namespace) -> int:
 def _serve(args: argparse.Namespace) -> int:
     import uvicorn
 
+    from service import listen
+
     for name in Settings.model_fields:
         value = getattr(args, name)
         if value is not None:
@@ -203,7 +205,7 @@ def _serve(args: argparse.Namespace) -> int:
     metrics_dir = tempfile.mkdtemp(prefix="keepset-metrics-")
     os.environ["PROMETHEUS_MULTIPROC_DIR"] = metrics_dir
     try:
-        uvicorn.run(
+        config = uvicorn.Config(
             "service.app:create_app",
             factory=True,
             host=settings.host,
@@ -214,9 +216,9 @@ def _serve(args: argparse.Namespace) -> int:
             log_level=settings.log_level,
             timeout_graceful_shutdown=10,
         )
+        return listen.run(config, settings.uds)
     finally:
         shutil.rmtree(metrics_dir, ignore_errors=True)
-    return 0
 
 
 if __name__ == "__main__":

@@ -10,20 +10,31 @@
 
 Logits travel as a raw ``.npy`` body (no JSON encoding of big arrays); the other fields go in
 the query string. Errors come back as :class:`KeepsetError` carrying the problem document.
+
+On the same host or pod: ``uds="/run/keepset/keepset.sock"`` talks over keepset's Unix socket
+(``KEEPSET_UDS``), and ``shm_dir="/dev/shm"`` (the server's ``KEEPSET_SHM_DIR``) writes the
+logits into a shared-memory segment the client owns and sends only its name.
+``dtype="float16"`` or ``"bfloat16"`` halves what travels, in either mode.
 """
 
 from __future__ import annotations
 
+import contextlib
+import functools
 import json
+import threading
 from collections.abc import AsyncIterator, Iterator, Mapping, Sequence
 from dataclasses import dataclass
+from pathlib import Path
 from typing import Any
 
 import httpx
 import numpy as np
 from numpy.typing import NDArray
 
+from service.dtypes import WireDtype, to_wire
 from service.npy import to_npy
+from service.shm import Segment
 
 NPY_MEDIA = "application/x-npy"
 
@@ -120,11 +131,16 @@ def _pick_request(
     routing_key: str | None,
     history: Sequence[Sequence[int]] | None,
     adjust: Mapping[str, float] | None,
+    dtype: WireDtype | None = None,
 ) -> tuple[bytes, dict[str, str]]:
     array = np.asarray(logits)
-    if array.dtype not in (np.float32, np.float16):
-        array = array.astype(np.float32)
     params: dict[str, str] = {}
+    if dtype is not None:
+        array = to_wire(array, dtype)
+        if dtype == "bfloat16":
+            params["dtype"] = dtype
+    elif array.dtype not in (np.float32, np.float16):
+        array = array.astype(np.float32)
     if seed is not None:
         params["seed"] = str(seed)
     if routing_key is not None:
@@ -134,6 +150,75 @@ def _pick_request(
     for name, value in (adjust or {}).items():
         params[name] = repr(float(value))
     return to_npy(array), params
+
+
+def _shm_body(
+    segment: Segment,
+    logits: NDArray[np.floating],
+    seed: int | None,
+    routing_key: str | None,
+    history: Sequence[Sequence[int]] | None,
+    adjust: Mapping[str, float] | None,
+    dtype: WireDtype | None,
+) -> dict[str, Any]:
+    body: dict[str, Any] = {"logits_shm": segment.write(logits, dtype or "float32")}
+    for name, value in (("seed", seed), ("routing_key", routing_key)):
+        if value is not None:
+            body[name] = value
+    if history is not None:
+        body["history"] = [[int(t) for t in row] for row in history]
+    if adjust:
+        body["adjust"] = {k: float(v) for k, v in adjust.items()}
+    return body
+
+
+@contextlib.contextmanager
+def _pick_post(
+    segments: _Segments | None,
+    dtype: WireDtype | None,
+    logits: NDArray[np.floating],
+    seed: int | None,
+    routing_key: str | None,
+    history: Sequence[Sequence[int]] | None,
+    adjust: Mapping[str, float] | None,
+) -> Iterator[dict[str, Any]]:
+    """The arguments of the ``POST /v1/pick`` that sends ``logits``: a shared-memory descriptor
+    (its segment stays leased until the block ends, i.e. until the answer is in) or a .npy body."""
+    if segments is None:
+        body, params = _pick_request(logits, seed, routing_key, history, adjust, dtype)
+        yield {"content": body, "params": params, "headers": {"Content-Type": NPY_MEDIA}}
+        return
+    with segments.lease() as segment:
+        yield {"json": _shm_body(segment, logits, seed, routing_key, history, adjust, dtype)}
+
+
+class _Segments:
+    """A client's shared-memory segments: one while picks come one after another, one more for
+    each pick in flight at the same time. A segment whose request failed on the way is removed,
+    not reused: keepset may still be reading it."""
+
+    def __init__(self, folder: Path):
+        self._folder = folder
+        self._free: list[Segment] = []
+        self._lock = threading.Lock()
+
+    @contextlib.contextmanager
+    def lease(self) -> Iterator[Segment]:
+        with self._lock:
+            segment = self._free.pop() if self._free else Segment(self._folder)
+        try:
+            yield segment
+        except BaseException:
+            segment.close()
+            raise
+        with self._lock:
+            self._free.append(segment)
+
+    def close(self) -> None:
+        with self._lock:
+            for segment in self._free:
+                segment.close()
+            self._free.clear()
 
 
 def _continue_body(
@@ -186,13 +271,39 @@ class _StepEvents:
         return None
 
 
-class Client:
-    """Blocking client. Reuse one instance: it keeps connections open."""
+class _Connection:
+    """Where keepset is and how logits travel, for both clients. ``uds``: keepset's Unix
+    socket (``base_url`` then only names the host); ``shm_dir``: the folder keepset shares as
+    ``KEEPSET_SHM_DIR``; ``dtype``: what the logits travel as (float16 and bfloat16 halve the
+    bytes; by default float16 arrays stay float16 and the rest go as float32)."""
 
-    def __init__(self, base_url: str, key: str, *, timeout: float = 10.0):
-        self._http = httpx.Client(
-            base_url=base_url, headers={"Authorization": f"Bearer {key}"}, timeout=timeout
-        )
+    def __init__(
+        self,
+        base_url: str,
+        key: str,
+        *,
+        timeout: float = 10.0,
+        uds: str | Path | None = None,
+        shm_dir: str | Path | None = None,
+        dtype: WireDtype | None = None,
+    ):
+        self._options: dict[str, Any] = {
+            "base_url": base_url,
+            "headers": {"Authorization": f"Bearer {key}"},
+            "timeout": timeout,
+        }
+        self._uds = None if uds is None else str(uds)
+        self._segments = _Segments(Path(shm_dir)) if shm_dir is not None else None
+        self._dtype = dtype
+
+
+class Client(_Connection):
+    """Blocking client. Reuse one instance: it keeps connections open (and its segment)."""
+
+    @functools.cached_property
+    def _http(self) -> httpx.Client:
+        transport = None if self._uds is None else httpx.HTTPTransport(uds=self._uds)
+        return httpx.Client(**self._options, transport=transport)
 
     def pick(
         self,
@@ -203,10 +314,9 @@ class Client:
         history: Sequence[Sequence[int]] | None = None,
         adjust: Mapping[str, float] | None = None,
     ) -> PickReply:
-        body, params = _pick_request(logits, seed, routing_key, history, adjust)
-        response = self._http.post(
-            "/v1/pick", content=body, params=params, headers={"Content-Type": NPY_MEDIA}
-        )
+        request = (logits, seed, routing_key, history, adjust)
+        with _pick_post(self._segments, self._dtype, *request) as post:
+            response = self._http.post("/v1/pick", **post)
         return _reply(response)
 
     def continue_prompt(
@@ -249,7 +359,11 @@ class Client:
                     return
 
     def close(self) -> None:
-        self._http.close()
+        """Close the connections and remove the client's segments."""
+        if "_http" in self.__dict__:  # made on first use
+            self._http.close()
+        if self._segments is not None:
+            self._segments.close()
 
     def __enter__(self) -> Client:
         return self
@@ -258,13 +372,13 @@ class Client:
         self.close()
 
 
-class AsyncClient:
-    """The same calls for asyncio code."""
+class AsyncClient(_Connection):
+    """The same calls for asyncio code; picks in flight together each get their own segment."""
 
-    def __init__(self, base_url: str, key: str, *, timeout: float = 10.0):
-        self._http = httpx.AsyncClient(
-            base_url=base_url, headers={"Authorization": f"Bearer {key}"}, timeout=timeout
-        )
+    @functools.cached_property
+    def _http(self) -> httpx.AsyncClient:
+        transport = None if self._uds is None else httpx.AsyncHTTPTransport(uds=self._uds)
+        return httpx.AsyncClient(**self._options, transport=transport)
 
     async def pick(
         self,
@@ -275,10 +389,9 @@ class AsyncClient:
         history: Sequence[Sequence[int]] | None = None,
         adjust: Mapping[str, float] | None = None,
     ) -> PickReply:
-        body, params = _pick_request(logits, seed, routing_key, history, adjust)
-        response = await self._http.post(
-            "/v1/pick", content=body, params=params, headers={"Content-Type": NPY_MEDIA}
-        )
+        request = (logits, seed, routing_key, history, adjust)
+        with _pick_post(self._segments, self._dtype, *request) as post:
+            response = await self._http.post("/v1/pick", **post)
         return _reply(response)
 
     async def continue_prompt(
@@ -318,7 +431,11 @@ class AsyncClient:
                     return
 
     async def aclose(self) -> None:
-        await self._http.aclose()
+        """Close the connections and remove the client's segments."""
+        if "_http" in self.__dict__:
+            await self._http.aclose()
+        if self._segments is not None:
+            self._segments.close()
 
     async def __aenter__(self) -> AsyncClient:
         return self

@@ -2,7 +2,8 @@
 
 Only the header is parsed by numpy's format helpers; the data is viewed with ``frombuffer``
 after checking that its length matches the header exactly. float32 and float16 are accepted,
-in either byte order; everything else is refused with a reason.
+in either byte order, and raw uint16 when the sender declares it as bfloat16 (numpy has no
+bfloat16 dtype); everything else is refused with a reason.
 """
 
 from __future__ import annotations
@@ -13,6 +14,8 @@ import re
 import numpy as np
 from numpy.lib import format as npy_format
 from numpy.typing import NDArray
+
+from service.dtypes import to_float32
 
 ACCEPTED = ("float32", "float16")
 
@@ -49,11 +52,13 @@ def _fast_header(data: bytes) -> tuple[tuple[int, ...], bool, np.dtype[np.generi
     return shape, match["fortran"] == b"True", dtype, 10 + length
 
 
-def read_npy(data: bytes) -> NDArray[np.floating]:
+def read_npy(data: bytes, declared: str | None = None) -> NDArray[np.floating]:
+    """The float32 logits in ``data``; ``declared="bfloat16"`` reads a uint16 array as raw
+    bfloat16 bits."""
     fast = _fast_header(data)
     if fast is not None:
         shape, fortran, dtype, offset = fast
-        return _array(data, shape, fortran, dtype, offset)
+        return _array(data, shape, fortran, dtype, offset, declared)
     stream = io.BytesIO(data)
     try:
         version = npy_format.read_magic(stream)
@@ -67,14 +72,29 @@ def read_npy(data: bytes) -> NDArray[np.floating]:
         raise
     except Exception as exc:  # numpy raises ValueError/SyntaxError variants for bad headers
         raise NpyError("malformed", f"not a .npy array: {exc}") from None
-    return _array(data, shape, fortran, dtype, stream.tell())
+    return _array(data, shape, fortran, dtype, stream.tell(), declared)
 
 
 def _array(
-    data: bytes, shape: tuple[int, ...], fortran: bool, dtype: np.dtype[np.generic], offset: int
+    data: bytes,
+    shape: tuple[int, ...],
+    fortran: bool,
+    dtype: np.dtype[np.generic],
+    offset: int,
+    declared: str | None,
 ) -> NDArray[np.floating]:
-    if dtype.hasobject or dtype.kind != "f" or dtype.name not in ACCEPTED:
-        raise NpyError("dtype", f"logits must be float32 or float16, got {dtype.str}")
+    if declared == "bfloat16":
+        if dtype.kind != "u" or dtype.itemsize != 2:
+            raise NpyError(
+                "dtype", f"bfloat16 logits travel as raw uint16 bits (<u2), got {dtype.str}"
+            )
+    elif dtype.hasobject or dtype.kind != "f" or dtype.name not in ACCEPTED:
+        hint = (
+            "; raw bfloat16 bits (uint16) must be declared as bfloat16"
+            if dtype.str[1:] == "u2"
+            else ""
+        )
+        raise NpyError("dtype", f"logits must be float32 or float16, got {dtype.str}{hint}")
     if len(shape) not in (1, 2) or 0 in shape:
         raise NpyError("malformed", f"logits must have shape [V] or [B, V], got {list(shape)}")
     expected = int(np.prod(shape)) * dtype.itemsize
@@ -86,6 +106,8 @@ def _array(
         )
     array = np.frombuffer(data, dtype=dtype, count=int(np.prod(shape)), offset=offset)
     array = array.reshape(shape, order="F" if fortran else "C")
+    if declared == "bfloat16":
+        return to_float32(array, "bfloat16")
     return array.astype(np.float32, copy=False) if dtype.isnative else array.astype(np.float32)
 
 

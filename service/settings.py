@@ -10,7 +10,7 @@ from __future__ import annotations
 from pathlib import Path
 from typing import Literal
 
-from pydantic import Field
+from pydantic import Field, field_validator
 from pydantic_settings import BaseSettings, SettingsConfigDict
 
 _PACKAGE = Path(__file__).resolve().parent
@@ -53,3 +53,15 @@ class Settings(BaseSettings):
         default=50, ge=1, description="rows needed before the collapse watch decides"
     )
     log_level: str = "info"
+    shm_dir: Path | None = Field(
+        default=None, description="folder of shared-memory segments callers may name; off if unset"
+    )
+    uds: Path | None = Field(
+        default=None, description="Unix domain socket to listen on besides host and port"
+    )
+
+    @field_validator("shm_dir", "uds", mode="before")
+    @classmethod
+    def _empty_is_off(cls, value: object) -> object:
+        # A manifest that sets the variable to "" means "off", not the current directory.
+        return None if value == "" else value

@@ -71,21 +71,35 @@ def free_port() -> int:
 
 
 class Server:
-    def __init__(self, base_url: str, process: subprocess.Popen[bytes], policies: Path, log: Path):
+    def __init__(
+        self,
+        base_url: str,
+        process: subprocess.Popen[bytes],
+        policies: Path,
+        log: Path,
+        uds: Path | None = None,
+    ):
         self.base_url = base_url
         self.process = process
         self.policies = policies
         self.log = log
+        self.uds = uds
 
     def log_text(self) -> str:
         return self.log.read_text(encoding="utf-8", errors="replace")
 
 
 def start_server(
-    policies: Path, workers: int = 2, *, wait_ready: bool = True, **env: str
+    policies: Path,
+    workers: int = 2,
+    *,
+    wait_ready: bool = True,
+    uds: Path | None = None,
+    **env: str,
 ) -> Server:
-    """``keepset serve`` on a free loopback port; returns once /readyz answers 200 (or, with
-    ``wait_ready=False``, once it answers at all)."""
+    """``keepset serve`` on a free loopback port, and on the Unix socket ``uds`` if given;
+    returns once /readyz answers 200 on each (or, with ``wait_ready=False``, once it answers
+    at all)."""
     port = free_port()
     environment = {
         **os.environ,
@@ -95,6 +109,7 @@ def start_server(
         "KEEPSET_HOST": "127.0.0.1",
         "KEEPSET_WORKERS": str(workers),
         "KEEPSET_LOG_LEVEL": "warning",
+        **({"KEEPSET_UDS": str(uds)} if uds is not None else {}),
         **env,
     }
     # The log goes to a file, not a pipe: a pipe nobody reads would block a chatty server.
@@ -107,14 +122,17 @@ def start_server(
             stderr=subprocess.STDOUT,
         )
     base = f"http://127.0.0.1:{port}"
-    server = Server(base, process, policies, log)
+    server = Server(base, process, policies, log, uds)
     deadline = time.monotonic() + 30
     while time.monotonic() < deadline:
         if process.poll() is not None:
             raise RuntimeError(f"keepset serve exited: {server.log_text()}")
         try:
-            status = httpx.get(f"{base}/readyz", timeout=1).status_code
-            if status == 200 or not wait_ready:
+            statuses = [httpx.get(f"{base}/readyz", timeout=1).status_code]
+            if uds is not None:
+                with httpx.Client(transport=httpx.HTTPTransport(uds=str(uds))) as over_uds:
+                    statuses.append(over_uds.get(f"{base}/readyz", timeout=1).status_code)
+            if all(s == 200 for s in statuses) or not wait_ready:
                 return server
         except httpx.HTTPError:
             pass

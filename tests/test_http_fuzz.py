@@ -1,8 +1,10 @@
 """Never a 500 for bad input: random and half-valid bodies, query strings and headers against the
-in-process app. Every answer must be a success or a problem document with a 4xx status."""
+in-process app, shared-memory descriptors against real small segment files, and raw bfloat16
+bodies. Every answer must be a success or a problem document with a 4xx status."""
 
 from __future__ import annotations
 
+import base64
 import io
 import json
 import shutil
@@ -16,6 +18,9 @@ from conftest import ROOT, auth, in_process
 from fastapi.testclient import TestClient
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
+
+from service.dtypes import bfloat16_to_float32
+from service.npy import to_npy
 
 JSON = st.recursive(
     st.none()
@@ -39,11 +44,30 @@ FUZZ = settings(
 )
 
 
+# Real small segment files the shared-memory fuzz names (besides names that do not exist).
+SEGMENTS = ["f32-3x7", "bf16-raw", "empty", "odd-bytes", "a-dir", "link-out"]
+
+
+def _segments(folder: Path) -> None:
+    rng = np.random.default_rng(0)
+    (folder / "f32-3x7").write_bytes(rng.standard_normal((3, 7)).astype("<f4").tobytes())
+    (folder / "bf16-raw").write_bytes(rng.integers(0, 2**16, 40, dtype=np.uint16).tobytes())
+    (folder / "empty").write_bytes(b"")
+    (folder / "odd-bytes").write_bytes(b"\x01" * 13)
+    (folder / "a-dir").mkdir()
+    (folder.parent / "outside").write_bytes(bytes(64))
+    (folder / "link-out").symlink_to(folder.parent / "outside")
+
+
 @pytest.fixture(scope="module")
 def client(tmp_path_factory: pytest.TempPathFactory) -> Iterator[TestClient]:
     registry = Path(tmp_path_factory.mktemp("fuzz")) / "policies"
     shutil.copytree(ROOT / "policies", registry)
-    with in_process(registry, max_rows=8, max_vocab=5000, max_body_bytes=100_000) as app:
+    shm_dir = registry.parent / "shm"
+    shm_dir.mkdir()
+    _segments(shm_dir)
+    limits = {"max_rows": 8, "max_vocab": 5000, "max_body_bytes": 100_000}
+    with in_process(registry, shm_dir=shm_dir, **limits) as app:
         yield app
 
 
@@ -112,6 +136,65 @@ def test_pick_npy_query_strings(client: TestClient, params: dict[str, str]) -> N
     body = THREE_ZEROS
     headers = {**auth("prompt-book-app"), "Content-Type": "application/x-npy"}
     assert_handled(client.post("/v1/pick", content=body, params=params, headers=headers))
+
+
+shm_descriptors = st.fixed_dictionaries(
+    {},
+    optional={
+        "segment": st.one_of(
+            st.sampled_from(SEGMENTS),
+            st.sampled_from(["../outside", "/etc/passwd", ".", "..", "", "f32-3x7/", "a\x00b"]),
+            st.text(max_size=12),
+            JSON,
+        ),
+        "offset": st.one_of(st.integers(-8, 200), st.integers(-(2**70), 2**70), JSON),
+        "shape": st.one_of(
+            st.lists(st.integers(-2, 12), max_size=3),
+            st.lists(st.integers(-(2**70), 2**70), max_size=3),
+            JSON,
+        ),
+        "dtype": st.one_of(st.sampled_from(["float32", "float16", "bfloat16"]), JSON),
+        "extra": JSON,
+    },
+)
+
+
+@FUZZ
+@given(
+    shm=shm_descriptors,
+    fields=st.fixed_dictionaries({}, optional={"seed": JSON, "history": JSON, "logits": JSON}),
+)
+def test_pick_shm_descriptors(
+    client: TestClient, shm: dict[str, Any], fields: dict[str, Any]
+) -> None:
+    body = {"logits_shm": shm, **fields}
+    assert_handled(client.post("/v1/pick", json=body, headers=auth("prompt-book-app")))
+
+
+@FUZZ
+@given(
+    bits=st.lists(st.integers(0, 2**16 - 1), min_size=1, max_size=24),
+    rows=st.integers(1, 3),
+    as_json=st.booleans(),
+)
+def test_pick_bfloat16_bodies(
+    client: TestClient, bits: list[int], rows: int, as_json: bool
+) -> None:
+    raw = np.array(bits, np.uint16)
+    if raw.size % rows == 0:
+        raw = raw.reshape(rows, -1)
+    if as_json:
+        encoded = base64.b64encode(to_npy(raw)).decode()
+        body = {"logits_npy": encoded, "logits_dtype": "bfloat16", "seed": 1}
+        response = client.post("/v1/pick", json=body, headers=auth("usher-desk"))
+    else:
+        headers = {**auth("usher-desk"), "Content-Type": "application/x-npy"}
+        params = {"dtype": "bfloat16", "seed": "1"}
+        response = client.post("/v1/pick", content=to_npy(raw), params=params, headers=headers)
+    assert_handled(response)
+    finite = np.isfinite(bfloat16_to_float32(raw).reshape(raw.shape[0] if raw.ndim == 2 else 1, -1))
+    # Every row with a finite entry is decided; a row without one is the documented 422.
+    assert response.status_code == (200 if finite.any(axis=1).all() else 422), response.text
 
 
 continue_fields = st.fixed_dictionaries(

@@ -1,0 +1,149 @@
+"""End-to-end ``/v1/pick`` step time per transport, each against its floor, in one interleaved run.
+
+Transports: TCP with a ``.npy`` body, the Unix socket with a ``.npy`` body, and shared memory
+(the segment written by the client, the small JSON over the Unix socket). A step is one
+``Client.pick`` of keepset's own client: encoding or writing the segment, the request, the
+answer. Each transport's floor is the bare app of loadtest/floor_app.py reached the same way
+(same client, same body; for shared memory it maps the segment), so keepset / floor is what
+keepset adds. "pick" is the in-process ``pick`` of the same batch with the same chain.
+
+Repeats are interleaved (every size and transport once per repeat); the table gives medians over
+repeats of each repeat's median, and the ratios are taken per repeat. Servers run on 127.0.0.1
+and Unix sockets in a temporary folder only, with one worker each; everything is bounded.
+
+    .venv/bin/python loadtest/bench_transport.py [--repeats 5] [--steps 8] [--quick]
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import shutil
+import statistics
+import tempfile
+import time
+from collections import defaultdict
+from collections.abc import Callable
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from bench_http import KEY, in_process_ms, start_floor, start_keepset, stop, write_results
+
+from service.client import Client
+
+SIZES = [(1, 32_000), (32, 32_000), (128, 32_000), (1, 128_256), (32, 128_256), (128, 128_256)]
+TRANSPORTS = ("tcp .npy", "uds .npy", "shm")
+MAX_BODY = 96 * 1024 * 1024  # a [128, 128256] float32 .npy is 65.7 MB
+
+
+def step_ms(client: Client, logits: np.ndarray, steps: int) -> float:
+    client.pick(logits, seed=1, routing_key="bench")  # warm: connection, segment size
+    times = []
+    for i in range(steps):
+        t0 = time.perf_counter()
+        client.pick(logits, seed=i, routing_key="bench")
+        times.append(time.perf_counter() - t0)
+    return statistics.median(times) * 1e3
+
+
+def main() -> int:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--repeats", type=int, default=5)
+    parser.add_argument("--steps", type=int, default=8)
+    parser.add_argument("--quick", action="store_true", help="2 repeats of 3 steps")
+    parser.add_argument("--out", type=Path, default=Path("loadtest/results/transport.json"))
+    args = parser.parse_args()
+    repeats, steps = (2, 3) if args.quick else (args.repeats, args.steps)
+    work = Path(tempfile.mkdtemp(prefix="keepset-bench-"))
+    shm_dir = work / "shm"
+    shm_dir.mkdir()
+    ks_sock, floor_sock = work / "keepset.sock", work / "floor.sock"
+    keepset, port = start_keepset(
+        1,
+        KEEPSET_UDS=str(ks_sock),
+        KEEPSET_SHM_DIR=str(shm_dir),
+        KEEPSET_MAX_ROWS="128",
+        KEEPSET_MAX_BODY_BYTES=str(MAX_BODY),
+    )
+    floor_tcp, floor_port = start_floor(1, shm_dir=shm_dir)
+    floor_uds, _ = start_floor(1, uds=floor_sock, shm_dir=shm_dir)
+    base, floor_base = f"http://127.0.0.1:{port}", f"http://127.0.0.1:{floor_port}"
+    clients: dict[str, tuple[Client, Client]] = {
+        "tcp .npy": (Client(base, KEY, timeout=60), Client(floor_base, KEY, timeout=60)),
+        "uds .npy": (
+            Client(base, KEY, timeout=60, uds=ks_sock),
+            Client(base, KEY, timeout=60, uds=floor_sock),
+        ),
+        "shm": (
+            Client(base, KEY, timeout=60, uds=ks_sock, shm_dir=shm_dir),
+            Client(base, KEY, timeout=60, uds=floor_sock, shm_dir=shm_dir),
+        ),
+    }
+    batches = {
+        (b, v): (np.random.default_rng(v + b).standard_normal((b, v)) * 3).astype(np.float32)
+        for b, v in SIZES
+    }
+    keepset_ms: dict[tuple[Any, ...], list[float]] = defaultdict(list)
+    floor_ms: dict[tuple[Any, ...], list[float]] = defaultdict(list)
+    ratio: dict[tuple[Any, ...], list[float]] = defaultdict(list)
+    pick_ms: dict[tuple[int, int], list[float]] = defaultdict(list)
+    started = time.monotonic()
+    try:
+        for _ in range(repeats):
+            for size, logits in batches.items():
+                pick_ms[size].append(in_process_ms(logits, count=steps))
+                for name in TRANSPORTS:
+                    ks, floor = clients[name]
+                    k, f = step_ms(ks, logits, steps), step_ms(floor, logits, steps)
+                    keepset_ms[(*size, name)].append(k)
+                    floor_ms[(*size, name)].append(f)
+                    ratio[(*size, name)].append(k / f)
+    finally:
+        for pair in clients.values():
+            for client in pair:
+                client.close()
+        for proc in (keepset, floor_tcp, floor_uds):
+            stop(proc)
+        shutil.rmtree(work, ignore_errors=True)
+
+    med: Callable[[list[float]], float] = statistics.median
+    print(
+        f"{'B':>4} {'V':>7} {'transport':>9} {'keepset ms':>10} {'floor ms':>9} "
+        f"{'ratio':>6} {'pick ms':>8} {'keepset-floor-pick ms':>21}"
+    )
+    results = []
+    for b, v in SIZES:
+        for name in TRANSPORTS:
+            key = (b, v, name)
+            k, f, r, p = (
+                med(keepset_ms[key]),
+                med(floor_ms[key]),
+                med(ratio[key]),
+                med(pick_ms[(b, v)]),
+            )
+            print(
+                f"{b:>4} {v:>7} {name:>9} {k:>10.2f} {f:>9.2f} {r:>6.2f} {p:>8.2f} "
+                f"{k - f - p:>21.2f}"
+            )
+            results.append(
+                {
+                    "rows": b,
+                    "vocab": v,
+                    "transport": name,
+                    "keepset_ms": k,
+                    "floor_ms": f,
+                    "ratio": r,
+                    "pick_ms": p,
+                }
+            )
+    print(
+        f"{repeats} repeats x {steps} steps, {time.monotonic() - started:.0f} s, "
+        f"{os.cpu_count()} CPUs"
+    )
+    write_results(args.out, results)
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())

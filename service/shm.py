@@ -1,0 +1,236 @@
+"""Logits in shared memory: the ``logits_shm`` descriptor of ``/v1/pick``, reading a caller's
+segment read-only from ``KEEPSET_SHM_DIR`` with the checks that keep every read inside it, and
+the reusable segment a sender (the Python client) writes into.
+
+A segment is a plain file in that folder (a memory-backed one: /dev/shm, a memory emptyDir).
+The caller writes a little-endian ``[V]`` or ``[B, V]`` block at ``offset`` and names it;
+keepset maps just that window, views float32 in place and converts float16/bfloat16.
+
+One race cannot be guarded here: a caller that shrinks a segment while a request naming it is
+in flight. The size is checked when the request arrives; a page cut away later makes the
+kernel raise SIGBUS in the worker that reads it. Callers must only grow segments in use.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import errno
+import math
+import mmap
+import os
+import re
+import secrets
+import stat
+from collections.abc import Callable
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from numpy.typing import NDArray
+from pydantic import BaseModel, ConfigDict, Field, StrictInt
+
+from service.dtypes import STORAGE, WireDtype, to_float32, to_wire
+from service.problems import Problem
+
+# A plain file name: no separator, no NUL, not "." or ".." (nor any hidden name), at most
+# NAME_MAX bytes. The character set is narrow on purpose: every name it allows means the same
+# file to every caller and to keepset, whatever their locale.
+_SEGMENT_NAME = re.compile(r"[A-Za-z0-9_-][A-Za-z0-9._-]{0,254}")
+_EMPTY: NDArray[np.float32] = np.empty((0, 0), np.float32)
+
+
+class ShmRef(BaseModel):
+    """Where a request's logits are: ``logits_shm`` of a ``/v1/pick`` JSON body."""
+
+    model_config = ConfigDict(extra="forbid")
+
+    segment: str = Field(description="file name inside KEEPSET_SHM_DIR")
+    offset: StrictInt = Field(default=0, ge=0, description="bytes from the start of the file")
+    shape: list[StrictInt] = Field(min_length=1, max_length=2, description="[V] or [B, V]")
+    dtype: WireDtype = "float32"
+
+
+class MappedLogits:
+    """float32 logits read from a segment. float32 is a read-only view of the mapping, which
+    stays open until :meth:`close`; float16/bfloat16 are converted copies (already unmapped)."""
+
+    def __init__(self, logits: NDArray[np.float32], mapping: mmap.mmap | None):
+        self.logits = logits
+        self._mapping = mapping
+
+    @property
+    def shared(self) -> bool:
+        """True while ``logits`` is a view of the caller's segment (which it may rewrite)."""
+        return self._mapping is not None
+
+    def close(self) -> None:
+        self.logits = _EMPTY
+        if self._mapping is not None:
+            # A view still living (an error's traceback holds it) makes Python refuse to unmap
+            # under it; the mapping then goes when the last view is freed.
+            with contextlib.suppress(BufferError):
+                self._mapping.close()
+            self._mapping = None
+
+
+def segment_shape(ref: ShmRef) -> tuple[int, int]:
+    """The descriptor's shape as (rows, vocabulary), or a 400 saying what is wrong with it."""
+    if any(n < 1 for n in ref.shape):
+        raise Problem(
+            400,
+            "shm-shape",
+            f"logits_shm.shape must be [V] or [B, V] of sizes >= 1, got {ref.shape}",
+        )
+    return (1, ref.shape[0]) if len(ref.shape) == 1 else (ref.shape[0], ref.shape[1])
+
+
+def read_segment(
+    ref: ShmRef, folder: Path | None, within_limits: Callable[[int, int], None]
+) -> MappedLogits:
+    """Map the logits ``ref`` names; every way it can be wrong is a problem document.
+
+    ``within_limits(rows, vocab)`` raises for shapes over the server's limits; it runs before
+    the file is opened, so an oversized descriptor never reaches the file system.
+    """
+    if folder is None:
+        raise Problem(
+            403,
+            "shm-off",
+            "shared-memory logits are off on this server (KEEPSET_SHM_DIR is not set); "
+            "send 'logits' or 'logits_npy'",
+        )
+    name = ref.segment
+    if not _SEGMENT_NAME.fullmatch(name):
+        raise Problem(
+            400,
+            "shm-name",
+            f"logits_shm.segment must be a plain file name of 1-255 characters from "
+            f"A-Z a-z 0-9 . _ - not starting with a dot, got {name[:64]!r}",
+        )
+    rows, vocab = segment_shape(ref)
+    within_limits(rows, vocab)
+    storage = STORAGE[ref.dtype]
+    if ref.offset % storage.itemsize:
+        raise Problem(
+            400,
+            "shm-offset",
+            f"logits_shm.offset {ref.offset} is not a multiple of {storage.itemsize}, "
+            f"the size of one {ref.dtype}",
+        )
+    count = math.prod(ref.shape)
+    nbytes = count * storage.itemsize
+    mapping, skip = _map_window(folder / name, name, ref.offset, nbytes)
+    view = np.frombuffer(mapping, dtype=storage, count=count, offset=skip)
+    view = view.reshape(ref.shape)
+    if ref.dtype == "float32":
+        return MappedLogits(view, mapping)
+    converted = to_float32(view, ref.dtype)
+    del view  # the last export of the mapping, so it can close now
+    mapping.close()
+    return MappedLogits(converted, None)
+
+
+def _map_window(path: Path, name: str, offset: int, nbytes: int) -> tuple[mmap.mmap, int]:
+    """A read-only mapping from ``offset`` rounded down to the allocation granularity to
+    ``offset + nbytes``, after checking the file is a regular one that long; and where in the
+    mapping ``offset`` is."""
+    # O_NOFOLLOW: a link could point anywhere the server may read. O_NONBLOCK: opening a FIFO
+    # for reading would otherwise wait for a writer forever.
+    flags = os.O_RDONLY | os.O_NOFOLLOW | os.O_NONBLOCK | os.O_CLOEXEC
+    try:
+        fd = os.open(path, flags)
+    except OSError as exc:
+        raise _open_problem(exc, name) from None
+    try:
+        info = os.fstat(fd)
+        if not stat.S_ISREG(info.st_mode):
+            raise Problem(
+                400,
+                "shm-not-regular",
+                f"segment {name!r} is not a regular file; keepset maps files only",
+            )
+        if offset + nbytes > info.st_size:
+            raise Problem(
+                400,
+                "shm-truncated",
+                f"segment {name!r} holds {info.st_size} bytes; offset {offset} plus the "
+                f"{nbytes} bytes its shape and dtype need runs past its end",
+            )
+        start = offset - offset % mmap.ALLOCATIONGRANULARITY
+        try:
+            window = mmap.mmap(fd, offset + nbytes - start, access=mmap.ACCESS_READ, offset=start)
+            return window, offset - start
+        except (OSError, ValueError, OverflowError) as exc:
+            # The file changed between the size check and the mapping.
+            raise Problem(400, "shm-map", f"segment {name!r} could not be mapped: {exc}") from None
+    finally:
+        os.close(fd)
+
+
+def _open_problem(exc: OSError, name: str) -> Problem:
+    if exc.errno == errno.ENOENT:
+        return Problem(404, "shm-not-found", f"no segment named {name!r} in KEEPSET_SHM_DIR")
+    if exc.errno == errno.ELOOP:
+        return Problem(
+            400,
+            "shm-not-regular",
+            f"segment {name!r} is a symbolic link; keepset does not follow links",
+        )
+    if exc.errno in (errno.EACCES, errno.EPERM):
+        return Problem(403, "shm-denied", f"keepset may not read segment {name!r}")
+    if exc.errno == errno.ENXIO:  # a Unix socket, or a FIFO without a writer
+        return Problem(
+            400,
+            "shm-not-regular",
+            f"segment {name!r} is not a regular file; keepset maps files only",
+        )
+    if exc.errno in (errno.EMFILE, errno.ENFILE, errno.ENOMEM):
+        return Problem(
+            503,
+            "shm-busy",
+            f"keepset could not open a segment now: {exc.strerror}",
+            headers={"Retry-After": "1"},
+        )
+    return Problem(400, "shm-open", f"segment {name!r} could not be opened: {exc.strerror}")
+
+
+class Segment:
+    """A segment a sender owns: created with a unique name in ``folder``, reused for every
+    write, grown (never shrunk, see the module docstring) when a bigger batch comes, and
+    removed by :meth:`close`. Mode 0660 (less the umask): keepset may run as another user of
+    the same group."""
+
+    def __init__(self, folder: Path):
+        self.name = f"keepset-{os.getpid()}-{secrets.token_hex(8)}"
+        self.path = Path(folder) / self.name
+        flags = os.O_RDWR | os.O_CREAT | os.O_EXCL | os.O_NOFOLLOW | os.O_CLOEXEC
+        self._fd = os.open(self.path, flags, 0o660)
+        self._mapping: mmap.mmap | None = None
+        self._size = 0
+
+    def write(self, values: NDArray[np.floating], dtype: WireDtype = "float32") -> dict[str, Any]:
+        """Write ``values`` ([V] or [B, V]) as ``dtype``; returns the ``logits_shm`` descriptor."""
+        data = to_wire(np.asarray(values), dtype)
+        if data.ndim not in (1, 2):
+            raise ValueError(f"logits must have shape [V] or [B, V], got {list(data.shape)}")
+        if self._mapping is None or data.nbytes > self._size:
+            self._grow(max(data.nbytes, 2 * self._size, mmap.PAGESIZE))
+        assert self._mapping is not None
+        self._mapping[: data.nbytes] = data.data.cast("B")
+        return {"segment": self.name, "offset": 0, "shape": list(data.shape), "dtype": dtype}
+
+    def _grow(self, size: int) -> None:
+        os.ftruncate(self._fd, size)
+        if self._mapping is not None:
+            self._mapping.close()
+        self._mapping = mmap.mmap(self._fd, size)
+        self._size = size
+
+    def close(self) -> None:
+        if self._mapping is not None:
+            self._mapping.close()
+            self._mapping = None
+        if self._fd >= 0:
+            os.close(self._fd)
+            self._fd = -1
+        self.path.unlink(missing_ok=True)

@@ -1,0 +1,129 @@
+"""The Python client's transports on a real ``keepset serve`` (TCP, Unix socket and shared
+memory at once): sync and async, shared-memory picks equal ``.npy`` picks in every dtype, the
+segment grows, one segment per pick in flight, and nothing is left in the folder after close."""
+
+from __future__ import annotations
+
+import asyncio
+import shutil
+from collections.abc import Iterator
+from pathlib import Path
+from typing import Any
+
+import ml_dtypes
+import numpy as np
+import pytest
+from conftest import DEMO_KEYS, ROOT, Server, start_server, stop_server
+
+from service.client import AsyncClient, Client, KeepsetError, PickReply
+
+KEY = DEMO_KEYS["prompt-book-app"]
+
+
+@pytest.fixture(scope="module")
+def folders(tmp_path_factory: pytest.TempPathFactory) -> tuple[Path, Path]:
+    root = Path(tmp_path_factory.mktemp("ct"))
+    (root / "shm").mkdir()
+    return root / "shm", root / "k.sock"
+
+
+@pytest.fixture(scope="module")
+def served(
+    tmp_path_factory: pytest.TempPathFactory, folders: tuple[Path, Path]
+) -> Iterator[Server]:
+    shm_dir, sock = folders
+    registry = Path(tmp_path_factory.mktemp("ct-registry")) / "policies"
+    shutil.copytree(ROOT / "policies", registry)
+    running = start_server(registry, workers=1, uds=sock, KEEPSET_SHM_DIR=str(shm_dir))
+    yield running
+    stop_server(running)
+
+
+def same(reply: PickReply) -> tuple[Any, ...]:
+    """What the same seed and inputs must reproduce (request_id differs)."""
+    return reply.policy, reply.version, reply.arm, reply.seed, reply.tokens, reply.rows
+
+
+def batch(b: int, v: int = 3000, seed: int = 0) -> np.ndarray:
+    return (np.random.default_rng(seed).standard_normal((b, v)) * 3).astype(np.float32)
+
+
+@pytest.mark.parametrize("dtype", ["float32", "float16", "bfloat16"])
+def test_sync_shm_and_uds_equal_tcp_npy(
+    served: Server, folders: tuple[Path, Path], dtype: Any
+) -> None:
+    shm_dir, sock = folders
+    logits = batch(4)
+    kw: dict[str, Any] = {"seed": 5, "routing_key": "u-1", "history": [[1, 2]] * 4}
+    kw["adjust"] = {"temperature": 0.9}
+    with Client(served.base_url, KEY, dtype=dtype) as tcp:
+        expected = same(tcp.pick(logits, **kw))
+    with Client("http://keepset", KEY, uds=sock, shm_dir=shm_dir, dtype=dtype) as both:
+        assert same(both.pick(logits, **kw)) == expected
+        assert len(list(shm_dir.iterdir())) == 1
+    with Client("http://keepset", KEY, uds=sock, dtype=dtype) as over_uds:
+        assert same(over_uds.pick(logits, **kw)) == expected
+    assert not list(shm_dir.iterdir()), "close removes the client's segment"
+    # What the server decided is the pick of the values the dtype can carry.
+    carried = {"float32": np.float32, "float16": np.float16, "bfloat16": ml_dtypes.bfloat16}
+    with Client(served.base_url, KEY) as plain:
+        rounded = logits.astype(carried[dtype]).astype(np.float32)
+        assert same(plain.pick(rounded, **kw)) == expected
+
+
+def test_segment_is_reused_and_grows(served: Server, folders: tuple[Path, Path]) -> None:
+    shm_dir, _ = folders
+    with Client(served.base_url, KEY, shm_dir=shm_dir) as ks, Client(served.base_url, KEY) as ref:
+        names = set()
+        for b, v in ((1, 100), (8, 20_000), (2, 50), (8, 20_000)):
+            logits = batch(b, v, seed=b)
+            assert same(ks.pick(logits, seed=1, routing_key="g")) == same(
+                ref.pick(logits, seed=1, routing_key="g")
+            )
+            names |= {p.name for p in shm_dir.iterdir()}
+        assert len(names) == 1
+        (segment,) = shm_dir.iterdir()
+        assert segment.stat().st_size >= 8 * 20_000 * 4
+        # A refused pick (no finite logit: 422) keeps the segment for the next one.
+        with pytest.raises(KeepsetError) as refused:
+            ks.pick(np.full((1, 10), -np.inf, np.float32))
+        assert refused.value.status == 422
+        assert [p.name for p in shm_dir.iterdir()] == [segment.name]
+    assert not list(shm_dir.iterdir())
+
+
+def test_a_folder_the_server_does_not_share_is_a_404(served: Server, tmp_path: Path) -> None:
+    with Client(served.base_url, KEY, shm_dir=tmp_path) as ks, pytest.raises(KeepsetError) as e:
+        ks.pick(batch(1))
+    assert e.value.status == 404 and "no segment named" in e.value.problem["detail"]
+
+
+def test_async_shm_and_uds(served: Server, folders: tuple[Path, Path]) -> None:
+    shm_dir, sock = folders
+
+    async def run() -> None:
+        inputs = [batch(2, 4000, seed=s) for s in range(6)]
+        async with AsyncClient(served.base_url, KEY) as tcp:
+            expected = [
+                same(await tcp.pick(x, seed=i, routing_key="a")) for i, x in enumerate(inputs)
+            ]
+        async with AsyncClient(
+            "http://keepset", KEY, uds=sock, shm_dir=shm_dir, dtype="bfloat16"
+        ) as ks:
+            together = await asyncio.gather(
+                *(ks.pick(x, seed=i, routing_key="a") for i, x in enumerate(inputs))
+            )
+            # Six picks in flight at once could not share one segment.
+            assert 1 < len(list(shm_dir.iterdir())) <= 6
+        async with AsyncClient("http://keepset", KEY, uds=sock, dtype="bfloat16") as npy:
+            via_npy = [
+                same(await npy.pick(x, seed=i, routing_key="a")) for i, x in enumerate(inputs)
+            ]
+        assert [same(r) for r in together] == via_npy
+        async with AsyncClient("http://keepset", KEY, uds=sock, shm_dir=shm_dir) as f32:
+            assert [
+                same(await f32.pick(x, seed=i, routing_key="a")) for i, x in enumerate(inputs)
+            ] == expected
+
+    asyncio.run(run())
+    assert not list(shm_dir.iterdir())

@@ -45,6 +45,18 @@ def in_process(registry: Path, **settings: Any) -> TestClient:
     return TestClient(create_app(Settings(policies=registry, **options)))
 
 
+def wait_ready(client: TestClient, within: float = 60.0) -> int:
+    """Poll /readyz until it answers 200 (model loaded, kernel compiled) or time runs out; the
+    last status. Tests that compare answers exactly wait for it: before the kernel is ready
+    picks take the numpy path, whose diagnostics differ in the last bits."""
+    deadline = time.monotonic() + within
+    while True:
+        status = client.get("/readyz").status_code
+        if status == 200 or time.monotonic() > deadline:
+            return status
+        time.sleep(0.05)
+
+
 def assert_problem(response: Any, status: int, needle: str = "") -> dict[str, Any]:
     """An RFC 9457 problem document with this status whose detail mentions ``needle``."""
     assert response.status_code == status, response.text

@@ -12,7 +12,7 @@ from typing import Any
 import ml_dtypes
 import numpy as np
 import pytest
-from conftest import assert_problem, auth, in_process
+from conftest import assert_problem, auth, in_process, wait_ready
 from fastapi.testclient import TestClient
 
 from service.dtypes import bfloat16_to_float32, float32_to_bfloat16
@@ -107,6 +107,7 @@ def test_npy_uint16_needs_the_declaration_and_bfloat16_needs_uint16() -> None:
 @pytest.fixture
 def client(registry: Path) -> Iterator[TestClient]:
     with in_process(registry) as test_client:
+        assert wait_ready(test_client) == 200
         yield test_client
 
 

@@ -5,14 +5,12 @@ path serving."""
 from __future__ import annotations
 
 import asyncio
-import time
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 import pytest
-from conftest import ROOT, auth, in_process
-from fastapi.testclient import TestClient
+from conftest import ROOT, auth, in_process, wait_ready
 
 from service import live as live_module
 from service.keys import load_keyring
@@ -21,21 +19,12 @@ from service.registry import load_registry
 from service.settings import Settings
 
 
-def _ready(client: TestClient, within: float = 60.0) -> int:
-    deadline = time.monotonic() + within
-    while True:
-        r = client.get("/readyz")
-        if r.status_code == 200 or time.monotonic() > deadline:
-            return r.status_code
-        time.sleep(0.05)
-
-
 def _answers(registry: Path, kernel: str) -> list[dict[str, Any]]:
     rng = np.random.default_rng(11)
     logits = (rng.standard_normal((3, 5000)) * 3).astype(np.float32)
     answers = []
     with in_process(registry, sampling_kernel=kernel) as client:
-        assert _ready(client) == 200
+        assert wait_ready(client) == 200
         assert client.app.state.live.kernel == kernel  # type: ignore[attr-defined]
         for who, seed in (("usher-desk", 5), ("prompt-book-app", 6), ("programme-desk", 7)):
             body = {
@@ -83,7 +72,7 @@ def test_readiness_waits_for_the_kernel(registry: Path) -> None:
     asyncio.run(warm_kernel(live))
     assert live.kernel == "compiled" and live.kernel_problem is None
     with in_process(registry) as client:
-        assert _ready(client) == 200
+        assert wait_ready(client) == 200
         client.app.state.live.kernel_problem = "the sampling kernel is compiling"  # type: ignore[attr-defined]
         r = client.get("/readyz")
         assert r.status_code == 503 and "compiling" in r.json()["detail"]

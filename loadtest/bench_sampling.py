@@ -1,33 +1,36 @@
-"""Benchmark of the sampling core: keepset against a sort-based reference and one exp pass.
+"""Benchmark of the sampling core: the compiled kernel, the numpy path, the sort-based reference
+and one exp pass, in one interleaved run.
 
-For each vocabulary size V and batch size B it times, in the same run and on the same rows:
-keepset's ``pick`` for the chain [temperature 0.8, top_k 50, top_p 0.9, typical 0.95,
-min_p 0.02] and for each of those stages alone; the plain sort-based reference of the test
-suite (tests/sampling_reference.py, which sorts the whole vocabulary for every stage); and one
-``np.exp`` pass over the rows, the cheapest thing that touches every logit once. It prints a
-table of median microseconds per row and writes the figures as JSON.
+For each vocabulary size V and batch size B it times, on the same rows: ``pick`` on the
+compiled kernel and on the numpy path for the chain [temperature 0.8, top_k 50, top_p 0.9,
+typical 0.95, min_p 0.02], with ``--threads`` sampling threads (2 by default: rows in
+parallel); the plain sort-based reference of the test suite (tests/sampling_reference.py, which
+sorts the whole vocabulary for every stage; timed on two rows per V, it is per row anyway); and
+one ``np.exp`` pass over one row, the cheapest thing that touches every logit once. This
+machine's speed drifts by tens of percent between minutes, so each repeat times every path back
+to back and the ratios are taken per repeat; the table shows medians over the repeats.
 
-    .venv/bin/python loadtest/bench_sampling.py [--quick] [--out loadtest/results/sampling.json]
+    .venv/bin/python loadtest/bench_sampling.py [--quick] [--repeats 7] [--threads 2]
 """
 
 from __future__ import annotations
 
 import argparse
-import json
-import os
-import platform
 import sys
 import time
 from collections.abc import Callable
+from functools import partial
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tests"))
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+from bench_http import write_results
 from sampling_reference import reference_row
 
-from service.sampling import parse_chain, pick
+from service.sampling import parse_chain, pick, warm_up
 
 CHAIN: list[dict[str, Any]] = [
     {"temperature": 0.8},
@@ -36,16 +39,12 @@ CHAIN: list[dict[str, Any]] = [
     {"typical": 0.95},
     {"min_p": 0.02},
 ]
-CASES: dict[str, list[dict[str, Any]]] = {"chain": CHAIN} | {
-    next(iter(stage)): [stage] for stage in CHAIN
-}
 
 
-def median_seconds(fn: Callable[[], object], budget: float, min_runs: int = 5) -> float:
-    fn()  # warm-up
-    times: list[float] = []
-    start = time.perf_counter()
-    while len(times) < min_runs or (time.perf_counter() - start < budget and len(times) < 200):
+def seconds(fn: Callable[[], object], calls: int) -> float:
+    """Median wall time of ``calls`` calls."""
+    times = []
+    for _ in range(calls):
         t0 = time.perf_counter()
         fn()
         times.append(time.perf_counter() - t0)
@@ -63,57 +62,56 @@ def logits(batch: int, vocab: int, seed: int) -> np.ndarray:
 def main() -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--quick", action="store_true", help="smaller sizes, for a smoke run")
+    parser.add_argument("--repeats", type=int, default=7)
+    parser.add_argument("--threads", type=int, default=2)
     parser.add_argument("--out", type=Path, default=Path("loadtest/results/sampling.json"))
     args = parser.parse_args()
     vocabs = [32_000] if args.quick else [32_000, 128_256, 256_000]
-    batches = [1, 8] if args.quick else [1, 8, 32]
-    budget = 0.2 if args.quick else 0.6
+    batches = [1, 8] if args.quick else [1, 8, 32, 128]
+    chain = parse_chain(CHAIN)
+    warm_up()
     results: list[dict[str, Any]] = []
     print(
-        f"{'V':>7} {'B':>3} {'case':>11} {'keepset us/row':>15} {'reference':>11} "
-        f"{'exp pass':>9} {'ref/keepset':>12} {'keepset/exp':>12}"
+        f"{'V':>7} {'B':>4} {'compiled':>9} {'numpy':>8} {'reference':>10} {'exp pass':>9}"
+        f" {'compiled/exp':>13} {'ref/compiled':>13} {'numpy/compiled':>15}   (us per row)"
     )
     for vocab in vocabs:
-        reference_rows = logits(2, vocab, seed=vocab + 1)
-        ref_cost: dict[str, float] = {}
-        for name, stages in CASES.items():
-            per_row = [
-                median_seconds(lambda r=r, s=stages: reference_row(s, 1, r), budget=0.0, min_runs=3)
-                for r in reference_rows
-            ]
-            ref_cost[name] = float(np.mean(per_row))
+        ref_rows = logits(2, vocab, seed=vocab + 1)
+        reference = float(
+            np.mean([seconds(lambda r=r: reference_row(CHAIN, 1, r), 3) for r in ref_rows])
+        )
         for batch in batches:
             x = logits(batch, vocab, seed=vocab * 7 + batch)
-            out = np.empty_like(x)  # allocating in the timed pass would time page faults too
-            exp_cost = median_seconds(lambda x=x, out=out: np.exp(x, out=out), budget) / batch
-            for name, stages in CASES.items():
-                chain = parse_chain(stages)
-                cost = median_seconds(lambda c=chain, x=x: pick(c, x, seed=1), budget) / batch
-                row = {
-                    "vocab": vocab,
-                    "batch": batch,
-                    "case": name,
-                    "keepset_us_per_row": cost * 1e6,
-                    "reference_us_per_row": ref_cost[name] * 1e6,
-                    "exp_pass_us_per_row": exp_cost * 1e6,
-                    "reference_over_keepset": ref_cost[name] / cost,
-                    "keepset_over_exp": cost / exp_cost,
-                }
-                results.append(row)
-                print(
-                    f"{vocab:>7} {batch:>3} {name:>11} {cost * 1e6:>15.0f} "
-                    f"{ref_cost[name] * 1e6:>11.0f} {exp_cost * 1e6:>9.0f} "
-                    f"{row['reference_over_keepset']:>11.1f}x {row['keepset_over_exp']:>11.2f}x"
-                )
-    args.out.parent.mkdir(parents=True, exist_ok=True)
-    meta = {
-        "python": platform.python_version(),
-        "numpy": np.__version__,
-        "cpus": os.cpu_count(),
-        "machine": platform.machine(),
-    }
-    args.out.write_text(json.dumps({"meta": meta, "results": results}, indent=2) + "\n")
-    print(f"wrote {args.out}")
+            out = np.empty_like(x[0])  # allocating in the timed pass would time page faults too
+            calls = max(3, min(40, 4000 // batch))
+            runs: dict[str, list[float]] = {"compiled": [], "numpy": [], "exp": []}
+            for _ in range(args.repeats):
+                for kernel in ("compiled", "numpy"):
+                    fn = partial(pick, chain, x, seed=1, threads=args.threads, kernel=kernel)
+                    fn()
+                    runs[kernel].append(seconds(fn, calls) / batch)
+                runs["exp"].append(seconds(partial(np.exp, x[0], out=out), calls * 2))
+            c, n, e = (np.array(runs[k]) for k in ("compiled", "numpy", "exp"))
+            row = {
+                "vocab": vocab,
+                "batch": batch,
+                "threads": args.threads,
+                "compiled_us_per_row": float(np.median(c)) * 1e6,
+                "numpy_us_per_row": float(np.median(n)) * 1e6,
+                "reference_us_per_row": reference * 1e6,
+                "exp_pass_us_per_row": float(np.median(e)) * 1e6,
+                "compiled_over_exp": float(np.median(c / e)),
+                "reference_over_compiled": float(np.median(reference / c)),
+                "numpy_over_compiled": float(np.median(n / c)),
+            }
+            results.append(row)
+            print(
+                f"{vocab:>7} {batch:>4} {row['compiled_us_per_row']:>9.0f}"
+                f" {row['numpy_us_per_row']:>8.0f} {row['reference_us_per_row']:>10.0f}"
+                f" {row['exp_pass_us_per_row']:>9.0f} {row['compiled_over_exp']:>12.2f}x"
+                f" {row['reference_over_compiled']:>12.1f}x {row['numpy_over_compiled']:>14.1f}x"
+            )
+    write_results(args.out, results)
     return 0
 
 

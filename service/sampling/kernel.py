@@ -200,8 +200,13 @@ def top_positions(row: Any, block_max: Any, m: int) -> Any:
         found = positions_at_least(row, block_max, t)
     if found.size <= m:
         return found
+    values = row[found]
+    if found.size > 4 * m:  # a short row (every block gathered): cut to the m-th value first
+        kth = np.partition(values, found.size - m)[found.size - m]
+        found = found[values >= kth]  # ties at the m-th value stay, in position order
+        values = row[found]
     # Stable sort of -value: among equal values the lower position (gathered first) comes first.
-    order = np.argsort(-row[found], kind="mergesort")[:m]
+    order = np.argsort(-values, kind="mergesort")[:m]
     return np.sort(found[order])
 
 
@@ -211,23 +216,16 @@ def positions_at_least(row: Any, block_max: Any, floor: Any) -> Any:
     maximum reaches it. (Loops over a block's slice: indexing the whole row by a computed
     position costs numba a wrap-around check that keeps LLVM from optimising the loop.)"""
     floor = max(floor, _LOWEST)  # -inf entries are never kept
+    blocks = np.flatnonzero(block_max >= floor)
+    found = np.empty(blocks.size * BLOCK, np.int64)
     count = 0
-    for b in range(block_max.size):
-        if block_max[b] >= floor:
-            block = row[b * BLOCK : (b + 1) * BLOCK]
-            for i in range(block.size):
-                if block[i] >= floor:
-                    count += 1
-    found = np.empty(count, np.int64)
-    count = 0
-    for b in range(block_max.size):
-        if block_max[b] >= floor:
-            block = row[b * BLOCK : (b + 1) * BLOCK]
-            for i in range(block.size):
-                if block[i] >= floor:
-                    found[count] = b * BLOCK + i
-                    count += 1
-    return found
+    for b in blocks:
+        block = row[b * BLOCK : (b + 1) * BLOCK]
+        for i in range(block.size):
+            if block[i] >= floor:
+                found[count] = b * BLOCK + i
+                count += 1
+    return found[:count]
 
 
 # --- the rules on the candidates (1-D, like ``row``) -----------------------------------------

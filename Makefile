@@ -34,6 +34,7 @@ test: lint prometheus
 bench: $(STAMP)
 	$(BIN)/python loadtest/bench_sampling.py
 	$(BIN)/python loadtest/bench_http.py
+	$(BIN)/python loadtest/bench_transport.py
 	$(BIN)/python loadtest/bench_continue.py
 
 clean:

@@ -55,7 +55,9 @@ def main() -> int:
     parser.add_argument("--out", type=Path, default=Path("loadtest/results/transport.json"))
     args = parser.parse_args()
     repeats, steps = (2, 3) if args.quick else (args.repeats, args.steps)
-    work = Path(tempfile.mkdtemp(prefix="keepset-bench-"))
+    # Segments live in memory, as they would in a pod's memory-backed emptyDir.
+    memory = "/dev/shm" if Path("/dev/shm").is_dir() else None
+    work = Path(tempfile.mkdtemp(prefix="keepset-bench-", dir=memory))
     shm_dir = work / "shm"
     shm_dir.mkdir()
     ks_sock, floor_sock = work / "keepset.sock", work / "floor.sock"
@@ -65,6 +67,7 @@ def main() -> int:
         KEEPSET_SHM_DIR=str(shm_dir),
         KEEPSET_MAX_ROWS="128",
         KEEPSET_MAX_BODY_BYTES=str(MAX_BODY),
+        KEEPSET_SAMPLING_THREADS="2",  # as the in-process pick it is compared with
     )
     floor_tcp, floor_port = start_floor(1, shm_dir=shm_dir)
     floor_uds, _ = start_floor(1, uds=floor_sock, shm_dir=shm_dir)

@@ -130,6 +130,9 @@ def read_segment(
     return MappedLogits(converted, None)
 
 
+_MAP_FLAGS = mmap.MAP_SHARED | getattr(mmap, "MAP_POPULATE", 0)
+
+
 def _map_window(path: Path, name: str, offset: int, nbytes: int) -> tuple[mmap.mmap, int]:
     """A read-only mapping from ``offset`` rounded down to the allocation granularity to
     ``offset + nbytes``, after checking the file is a regular one that long; and where in the
@@ -158,7 +161,11 @@ def _map_window(path: Path, name: str, offset: int, nbytes: int) -> tuple[mmap.m
             )
         start = offset - offset % mmap.ALLOCATIONGRANULARITY
         try:
-            window = mmap.mmap(fd, offset + nbytes - start, access=mmap.ACCESS_READ, offset=start)
+            # MAP_POPULATE maps every page in one call: the kernel then reads the whole window
+            # without a page fault per 4 KiB (about a millisecond for a 16 MB batch).
+            window = mmap.mmap(
+                fd, offset + nbytes - start, flags=_MAP_FLAGS, prot=mmap.PROT_READ, offset=start
+            )
             return window, offset - start
         except (OSError, ValueError, OverflowError) as exc:
             # The file changed between the size check and the mapping.

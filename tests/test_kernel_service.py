@@ -96,3 +96,34 @@ def test_numpy_setting_never_compiles(registry: Path, monkeypatch: pytest.Monkey
     live = _live(registry, sampling_kernel="numpy")
     asyncio.run(warm_kernel(live))
     assert calls == [] and live.kernel == "numpy" and live.kernel_problem is None
+
+
+def test_read_only_and_writable_rows_give_identical_answers() -> None:
+    # Request bodies arrive as read-only arrays, arrays made in process are writable; numba
+    # would compile the kernel once for each and LLVM may sum them in a different order.
+    from service.sampling import kernel, parse_chain, pick
+
+    x = (np.random.default_rng(3).standard_normal((4, 3000)) * 3).astype(np.float32)
+    body = np.frombuffer(x.tobytes(), np.float32).reshape(x.shape)
+    assert not body.flags.writeable
+    chain = parse_chain([{"temperature": 0.9}, {"top_k": 200}, {"typical": 0.95}])
+    a, b = pick(chain, x, seed=1), pick(chain, body, seed=1)
+    for field in ("tokens", "kept", "kept_mass", "entropy", "prob", "logprob"):
+        np.testing.assert_array_equal(getattr(a, field), getattr(b, field), err_msg=field)
+    assert len(kernel.pick_rows.signatures) == 1
+
+
+def test_plans_die_with_their_chains() -> None:
+    # A request with adjustments makes a chain of its own; its plan must not outlive it.
+    import gc
+
+    from service.sampling import compiled, parse_chain
+
+    before = len(compiled._PLANS)
+    chains = [parse_chain([{"temperature": 0.5 + i / 100}, {"top_k": 5}]) for i in range(50)]
+    for chain in chains:
+        assert compiled.plan_for(chain) is compiled.plan_for(chain)
+    assert len(compiled._PLANS) == before + 50
+    del chains, chain
+    gc.collect()
+    assert len(compiled._PLANS) == before

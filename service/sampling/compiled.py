@@ -53,7 +53,7 @@ _HISTORY_EDITS = ("repetition_penalty", "occurrence_penalty")
 class Plan:
     """What the kernel needs of a chain, made once per chain."""
 
-    chain: Chain
+    min_keep: int  # not the chain itself: the plan table must not keep chains alive
     prefix: tuple[Stage, ...]  # temperatures and edits before the first truncation
     tail: tuple[Stage, ...]  # the first truncation (top_k, greedy or min_p) and what follows
     needs_history: bool
@@ -94,7 +94,10 @@ def plan_for(chain: Chain) -> Plan | None:
     if known is not None and known[0]() is chain:
         return known[1]
     plan = _plan(chain)
-    _PLANS[id(chain)] = (weakref.ref(chain, lambda _: _PLANS.pop(id(chain), None)), plan)
+    # The callback holds the key and the table, not the chain (which would then never die)
+    # nor the module's global name (gone at interpreter exit, when the last chains die).
+    key, plans = id(chain), _PLANS
+    plans[key] = (weakref.ref(chain, lambda _: plans.pop(key, None)), plan)
     return plan
 
 
@@ -109,7 +112,7 @@ def _plan(chain: Chain) -> Plan | None:
         return None
     prefix, tail = chain.stages[:start], chain.stages[start:]
     return Plan(
-        chain=chain,
+        min_keep=chain.min_keep,
         prefix=prefix,
         tail=tail,
         needs_history=any(s.method in _HISTORY_EDITS for s in chain.stages),
@@ -121,18 +124,30 @@ def packed(plan: Plan, history: list[int]) -> tuple[I64, F64]:
     """The chain as the kernel reads it (see ``kernel``), for one row's history."""
     if not plan.needs_history:
         return plan.static
-    return _pack(plan.chain.min_keep, plan.prefix, plan.tail, history)
+    return _pack(plan.min_keep, plan.prefix, plan.tail, history)
 
 
 def decide(plan: Plan, raw: F32, history: list[int], u: float) -> Decided | None:
     """One row: its kept set and draw, or None when the kernel does not decide it."""
     ints, floats = packed(plan, history)
     status, ids, probs, token, prob, kept_mass, entropy, logprob = kernel.decide_row(
-        raw, ints, floats, u
+        _read_only(raw), ints, floats, u
     )
     if status != kernel.DECIDED:
         return None
     return Decided(ids, probs, int(token), prob, kept_mass, entropy, logprob)
+
+
+def _read_only(rows: F32) -> F32:
+    """A read-only view. numba compiles a separate version of the kernel for read-only arrays
+    (request bodies are read-only, arrays made in process are not), and LLVM may vectorise the
+    two differently: the same logits would then get diagnostics that differ in the last bits,
+    and the first read-only request would wait for a compile. One type, one compiled kernel."""
+    if not rows.flags.writeable:
+        return rows
+    view = rows.view()
+    view.flags.writeable = False
+    return view
 
 
 def pick_rows(
@@ -145,6 +160,7 @@ def pick_rows(
     """A batch through the kernel; ``parts(work, n)`` runs ``work(lo, hi)`` over the rows (in
     threads: the kernel releases the GIL)."""
     n = rows.shape[0]
+    rows = _read_only(rows)
     if plan.needs_history:
         ints, floats = _stack([packed(plan, h) for h in histories])
     else:

@@ -186,18 +186,49 @@ def scan(row: Any, block_max: Any) -> tuple[float, float, float]:
 # --- cutting a row to candidates ------------------------------------------------------------------
 
 
+_BINS = 64
+
+
+@njit(**_JIT)
+def _block_floor(block_max: Any, m: int) -> Any:
+    """A value that at least ``m`` finite block maxima reach, close to the m-th largest: the
+    least value in the top bins of a histogram of the block maxima (-inf when there are no more
+    than m finite ones). Counting is exact, so the bound holds whatever the rounding of a bin."""
+    lo, hi, finite = np.inf, -np.inf, 0
+    for v in block_max:
+        if v > -np.inf:
+            finite += 1
+            lo, hi = min(lo, float(v)), max(hi, float(v))
+    if finite <= m:
+        return np.float32(-np.inf)
+    width = (hi - lo) / _BINS
+    if width == 0.0:
+        return np.float32(lo)
+    counts = np.zeros(_BINS, np.int64)
+    least = np.full(_BINS, np.inf)
+    for v in block_max:
+        if v > -np.inf:
+            k = min(int((float(v) - lo) / width), _BINS - 1)
+            counts[k] += 1
+            least[k] = min(least[k], float(v))
+    total, floor = 0, np.inf
+    for k in range(_BINS - 1, -1, -1):
+        total += counts[k]
+        floor = min(floor, least[k])
+        if total >= m:
+            break
+    return np.float32(floor)
+
+
 @njit(**_JIT)
 def top_positions(row: Any, block_max: Any, m: int) -> Any:
     """Positions (ascending) of the ``m`` largest finite entries, ties to the lower position.
 
-    The m-th largest block maximum t is a lower bound of the m-th largest entry (m blocks hold
-    an entry >= t), so only blocks whose maximum reaches t can hold the answer: about m blocks.
+    Any value t that at least m block maxima reach is a lower bound of the m-th largest entry
+    (m blocks hold an entry >= t), so only blocks whose maximum reaches t can hold the answer:
+    with t near the m-th largest block maximum, about m blocks.
     """
-    if m >= block_max.size:
-        found = positions_at_least(row, block_max, np.float32(-np.inf))
-    else:
-        t = np.partition(block_max, block_max.size - m)[block_max.size - m]
-        found = positions_at_least(row, block_max, t)
+    found = positions_at_least(row, block_max, _block_floor(block_max, m))
     if found.size <= m:
         return found
     values = row[found]

@@ -10,7 +10,7 @@ from typing import Any
 
 import numpy as np
 import pytest
-from conftest import ROOT, auth, in_process, wait_ready
+from conftest import ROOT, assert_same_pick, auth, in_process, wait_ready
 
 from service import live as live_module
 from service.keys import load_keyring
@@ -48,17 +48,7 @@ def test_compiled_and_numpy_settings_answer_the_same(registry: Path) -> None:
     compiled = _answers(registry, "compiled")
     numpy_path = _answers(registry, "numpy")
     for a, b in zip(compiled, numpy_path, strict=True):
-        rows_a, rows_b = a.pop("rows"), b.pop("rows")
-        assert a == b  # tokens, policy, version, arm, seed: exactly
-        for ra, rb in zip(rows_a, rows_b, strict=True):
-            assert (ra["token"], ra["kept"], ra["fallback"]) == (
-                rb["token"],
-                rb["kept"],
-                rb["fallback"],
-            )
-            # The numpy path sums the raw softmax in float32, the kernel in float64 chunks.
-            for field in ("prob", "logprob", "entropy", "kept_mass"):
-                assert ra[field] == pytest.approx(rb[field], rel=1e-5, abs=1e-7), field
+        assert_same_pick(a, b)
 
 
 def _live(registry: Path, **settings: Any) -> Live:

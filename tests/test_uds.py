@@ -14,7 +14,7 @@ from typing import Any
 import httpx
 import numpy as np
 import pytest
-from conftest import auth, start_server, stop_server
+from conftest import assert_same_pick, auth, start_server, stop_server
 
 from service.listen import bind_unix
 from service.npy import to_npy
@@ -59,8 +59,9 @@ def test_uds_picks_equal_tcp_picks(registry: Path, tmp_path: Path, workers: int)
             httpx.Client() as over_tcp,
         ):
             for seed in range(5):
-                assert pick_over(over_uds, server.base_url, logits, seed) == pick_over(
-                    over_tcp, server.base_url, logits, seed
+                assert_same_pick(
+                    pick_over(over_uds, server.base_url, logits, seed),
+                    pick_over(over_tcp, server.base_url, logits, seed),
                 )
 
         def burst(seed: int) -> int:

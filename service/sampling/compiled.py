@@ -78,6 +78,7 @@ class Picked:
     """A batch through ``kernel.pick_rows``: per row, ``status`` (``kernel.DECIDED`` or why
     not) and the diagnostics of the decided rows."""
 
+    undecided: int  # how many rows have a status other than DECIDED
     status: I64
     tokens: I64
     kept: I64
@@ -168,11 +169,14 @@ def pick_rows(
     # Two arrays for the kernel to fill (fewer arguments to type on every call), seen as columns.
     out_ints, out_floats = np.empty((3, n), np.int64), np.empty((4, n))
 
+    undecided: list[int] = []
+
     def work(lo: int, hi: int) -> None:
-        kernel.pick_rows(rows, lo, hi, ints, floats, uniforms, out_ints, out_floats)
+        count = kernel.pick_rows(rows, lo, hi, ints, floats, uniforms, out_ints, out_floats)
+        undecided.append(count)
 
     parts(work, n)
-    return Picked(*out_ints, *out_floats)
+    return Picked(sum(undecided), *out_ints, *out_floats)
 
 
 def _stack(packs: list[tuple[I64, F64]]) -> tuple[I64, F64]:

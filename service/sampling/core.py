@@ -168,8 +168,8 @@ def _pick_compiled(
         plan, rows, histories, uniforms, lambda work, n: _in_parallel(work, n, workers)
     )
     fallback: list[str | None] = [None] * rows.shape[0]
-    undecided = out.status != compiled.kernel.DECIDED
-    rest = _handed_back(rows, undecided) if undecided.any() else []
+    # The kernel counts what it hands back: no array pass over the statuses when that is none.
+    rest = _handed_back(rows, out.status != compiled.kernel.DECIDED) if out.undecided else []
     if rest:
         others = _pick_numpy(
             chain, rows[rest], [histories[b] for b in rest], uniforms[rest], seed, threads

@@ -560,13 +560,16 @@ def pick_rows(
     uniforms: Any,
     out_ints: Any,
     out_floats: Any,
-) -> None:
+) -> int:
     """Rows ``lo:hi`` of a batch, each with its own row of ``ints``/``floats`` (or all with the
     only one), written into columns of ``out_ints`` (status, token, kept) and ``out_floats``
-    (kept mass, entropy, prob, logprob)."""
+    (kept mass, entropy, prob, logprob). Returns how many rows it did not decide."""
+    undecided = 0
     for b in range(lo, hi):
         plan = min(b, ints.shape[0] - 1)
         decided = decide_row(rows[b], ints[plan], floats[plan], uniforms[b])
         out_ints[0, b], out_ints[1, b], out_ints[2, b] = decided[0], decided[3], decided[1].size
         out_floats[0, b], out_floats[1, b] = decided[5], decided[6]
         out_floats[2, b], out_floats[3, b] = decided[4], decided[7]
+        undecided += decided[0] != DECIDED
+    return undecided

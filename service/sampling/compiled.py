@@ -205,11 +205,10 @@ def _pack(
 def _arrays(stages: tuple[Stage, ...], history: list[int]) -> Stages:
     """Stages in the kernel's form: edit stage j changes ``tokens[edit_from[j]:edit_from[j+1]]``
     (the arrays form of ``batch.edits_for``)."""
-    edits = [_edits(s, history) for s in stages if s.method in _EDITS]
-    counts = iter([e[0].size for e in edits])
-    sizes = [next(counts) if s.method in _EDITS else 0 for s in stages]
+    per_stage = [_edits(s, history) if s.method in _EDITS else None for s in stages]
+    edits = [e for e in per_stage if e is not None]
     edit_from = np.zeros(len(stages) + 1, np.int64)
-    np.cumsum(sizes, out=edit_from[1:])
+    np.cumsum([0 if e is None else e[0].size for e in per_stage], out=edit_from[1:])
     params = [s.number if s.method in _NUMBERED else 0.0 for s in stages]
     return (
         np.array([_CODES[s.method] for s in stages], np.int64),

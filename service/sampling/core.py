@@ -63,10 +63,6 @@ def kernel_available() -> bool:
     return compiled is not None
 
 
-def default_kernel() -> Kernel:
-    return "compiled" if compiled is not None else "numpy"
-
-
 def warm_up() -> None:
     """Compile the kernel now (or load it from numba's on-disk cache), so that the first
     request does not wait for it; nothing to do without numba."""
@@ -309,10 +305,10 @@ def final_distribution(
     histories = _histories(history, rows.shape)
     _check_token_ids(chain, rows.shape[1])
     plan = _plan(chain, kernel)
+    out = np.zeros(rows.shape, np.float64)
     if plan is not None:
         by_kernel = _decide_compiled(plan, rows, histories)
         rest = _handed_back(rows, np.array([d is None for d in by_kernel]))
-        out = np.zeros(rows.shape, np.float64)
         for b, d in enumerate(by_kernel):
             if d is not None:
                 out[b, d.ids] = d.probs
@@ -321,7 +317,6 @@ def final_distribution(
                 chain, rows[rest], [histories[b] for b in rest], kernel="numpy"
             )
         return out
-    out = np.zeros(rows.shape, np.float64)
     if rows.shape[0] == 1 and math.isfinite(float(rows.max())):
         decided = decide_row(chain, rows[0], histories[0])
         if decided is not None:  # else the general path applies the fallback

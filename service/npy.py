@@ -9,6 +9,7 @@ bfloat16 dtype); everything else is refused with a reason.
 from __future__ import annotations
 
 import io
+import math
 import re
 
 import numpy as np
@@ -97,14 +98,16 @@ def _array(
         raise NpyError("dtype", f"logits must be float32 or float16, got {dtype.str}{hint}")
     if len(shape) not in (1, 2) or 0 in shape:
         raise NpyError("malformed", f"logits must have shape [V] or [B, V], got {list(shape)}")
-    expected = int(np.prod(shape)) * dtype.itemsize
+    # math.prod on Python ints: np.prod would wrap around on a header with huge dimensions.
+    count = math.prod(shape)
+    expected = count * dtype.itemsize
     if len(data) - offset != expected:
         raise NpyError(
             "malformed",
             f"the header says {expected} data bytes for shape {list(shape)}, "
             f"the body has {len(data) - offset}",
         )
-    array = np.frombuffer(data, dtype=dtype, count=int(np.prod(shape)), offset=offset)
+    array = np.frombuffer(data, dtype=dtype, count=count, offset=offset)
     array = array.reshape(shape, order="F" if fortran else "C")
     if declared == "bfloat16":
         return to_float32(array, "bfloat16")

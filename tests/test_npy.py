@@ -102,3 +102,13 @@ def test_header_dtypes(descr: str, kind: str | None) -> None:
 def test_client_encoding_round_trips() -> None:
     values = np.random.default_rng(1).standard_normal((3, 7)).astype(np.float16)
     np.testing.assert_array_equal(read_npy(to_npy(values)), values.astype(np.float32))
+
+
+def test_a_header_whose_size_overflows_int64_is_malformed() -> None:
+    # 2**32 * 2**32 elements wrap to 0 in int64 arithmetic, which would "match" an empty body.
+    header = b"{'descr': '<f4', 'fortran_order': False, 'shape': (4294967296, 4294967296), }"
+    header += b" " * (-(10 + len(header) + 1) % 64) + b"\n"
+    data = b"\x93NUMPY\x01\x00" + len(header).to_bytes(2, "little") + header
+    with pytest.raises(NpyError) as caught:
+        read_npy(data)
+    assert caught.value.kind == "malformed"

@@ -34,7 +34,7 @@ from service.bodies import (
     pick_input,
 )
 from service.guard import Guard
-from service.keys import Identity, load_keyring
+from service.keys import Identity, load_keyring, utc_now
 from service.live import (
     Live,
     arm_shares,
@@ -137,8 +137,14 @@ def _identity(request: Request, live: Live) -> Identity:
             "send the API key as 'Authorization: Bearer <key>'",
             headers={"WWW-Authenticate": "Bearer"},
         )
-    identity = live.keys.identify(token.strip())
+    now = utc_now()
+    identity = live.keys.identify(token.strip(), now)
     if identity is None:
+        stored = live.keys.match(token.strip())
+        if stored is not None and stored.not_after is not None:
+            when = stored.not_after.isoformat()
+            detail = f"the API key expired at {when}; ask for its replacement"
+            raise Problem(401, "expired-key", detail, headers={"WWW-Authenticate": "Bearer"})
         raise Problem(
             401, "bad-key", "the API key is not known", headers={"WWW-Authenticate": "Bearer"}
         )
@@ -273,7 +279,8 @@ def _add_routes(app: FastAPI, live: Live) -> None:
     @app.get("/v1/routes", summary="Routes and arms (admin)")
     async def routes(request: Request) -> dict[str, Any]:
         _admin(request, live)
-        return routes_with_ratio(live.snapshot)
+        keys = live.keys.describe(utc_now(), live.settings.key_expiry_warning_days)
+        return {**routes_with_ratio(live.snapshot), "keys": keys}
 
     @app.post("/v1/registry/reload", summary="Reload the registry (admin)")
     async def reload(request: Request) -> JSONResponse:

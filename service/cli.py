@@ -5,12 +5,13 @@ keepset policy check [DIR]                        exit 1 and list every problem 
 keepset policy publish DIR NAME                   add NAME's next version to published.lock
 keepset policy diff NAME@A NAME@B [--policies DIR]
 keepset policy schema [DIR]                       rewrite DIR/policy.schema.json
-keepset keys add CLIENT [--keys FILE] [--admin] [--rotate]
+keepset keys add CLIENT [--keys FILE] [--admin] [--rotate [--overlap-hours H]] [--expires-days D]
 """
 
 from __future__ import annotations
 
 import argparse
+import datetime as dt
 import json
 import os
 import shutil
@@ -78,7 +79,20 @@ def _parser() -> argparse.ArgumentParser:
     add.add_argument("name")
     add.add_argument("--keys", type=Path, default=None)
     add.add_argument("--admin", action="store_true", help="an admin key instead of a client key")
-    add.add_argument("--rotate", action="store_true", help="replace an existing key")
+    add.add_argument(
+        "--rotate",
+        action="store_true",
+        help="replace an existing key; the old one keeps working for --overlap-hours",
+    )
+    add.add_argument(
+        "--overlap-hours",
+        type=float,
+        default=24.0,
+        help="with --rotate: how long the old key stays accepted (default 24; 0 ends it now)",
+    )
+    add.add_argument(
+        "--expires-days", type=float, default=None, help="the new key stops working after this"
+    )
     add.set_defaults(run=_keys_add)
     return parser
 
@@ -180,7 +194,14 @@ def _schema(args: argparse.Namespace) -> int:
 
 def _keys_add(args: argparse.Namespace) -> int:
     path = args.keys if args.keys is not None else Settings().keys
-    key = add_key(path, args.name, "admin" if args.admin else "client", rotate=args.rotate)
+    key = add_key(
+        path,
+        args.name,
+        "admin" if args.admin else "client",
+        rotate=args.rotate,
+        overlap=dt.timedelta(hours=args.overlap_hours),
+        expires_in=None if args.expires_days is None else dt.timedelta(days=args.expires_days),
+    )
     print(key)
     print(
         f"stored the hash for {args.name} in {path}; this key is not shown again", file=sys.stderr

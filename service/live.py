@@ -8,15 +8,17 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
+import hashlib
 import logging
 import random
 from dataclasses import dataclass, field
+from pathlib import Path
 from typing import Any
 
 from starlette.concurrency import run_in_threadpool
 
 from service import metrics
-from service.keys import KeyRing
+from service.keys import KeyRing, load_keyring
 from service.model import Model, ModelError
 from service.registry import RegistrySnapshot, reload_registry
 from service.sampling import Kernel, kernel_available, warm_up
@@ -53,9 +55,15 @@ def reload_now(live: Live, trigger: str) -> dict[str, Any]:
     snapshot, report = reload_registry(live.snapshot, live.settings.policies)
     live.snapshot = snapshot
     metrics.set_arm_weights(arm_shares(snapshot))
-    outcome = "loaded" if report.ok else "kept_last_good"
+    keys_problem = reload_keys(live)
+    outcome = "loaded" if report.ok and keys_problem is None else "kept_last_good"
     metrics.REGISTRY_RELOADS.labels(outcome).inc()
-    result = {"outcome": outcome, "trigger": trigger, **report.as_dict()}
+    result = {
+        "outcome": outcome,
+        "trigger": trigger,
+        **report.as_dict(),
+        "keys": "loaded" if keys_problem is None else f"kept last good: {keys_problem}",
+    }
     live.last_reload = result
     if report.ok:
         log.info("registry reloaded (%s): %d files", trigger, len(report.loaded))
@@ -64,6 +72,26 @@ def reload_now(live: Live, trigger: str) -> dict[str, Any]:
             "registry reload refused (%s); keeping the last good: %s", trigger, report.refused
         )
     return result
+
+
+def reload_keys(live: Live) -> str | None:
+    """Read the keys file again (a rotation, a new client); keep the last good keys and say why
+    when it cannot be used."""
+    try:
+        live.keys = load_keyring(live.settings.keys)
+    except (ValueError, OSError) as exc:  # KeysError and YamlFileError are ValueErrors
+        log.warning("keys file refused; keeping the last good keys: %s", exc)
+        return str(exc)
+    return None
+
+
+def keys_fingerprint(path: Path) -> str:
+    """The keys file's content hash: a Secret volume swaps it by symlink, so stat alone may
+    not change."""
+    try:
+        return hashlib.sha256(path.read_bytes()).hexdigest()
+    except OSError:
+        return ""
 
 
 async def load_model(live: Live) -> None:
@@ -117,6 +145,7 @@ async def poll_registry(live: Live) -> None:
     if interval <= 0:
         return
     seen = live.snapshot.fingerprint
+    seen_keys = keys_fingerprint(live.settings.keys)
     while True:
         await asyncio.sleep(interval)
         try:
@@ -125,9 +154,14 @@ async def poll_registry(live: Live) -> None:
             )
         except OSError:
             continue
+        current_keys = await run_in_threadpool(keys_fingerprint, live.settings.keys)
         if current != seen:
-            seen = current
-            reload_now(live, "file-change")
+            seen, seen_keys = current, current_keys
+            reload_now(live, "file-change")  # the keys too
+        elif current_keys != seen_keys:
+            seen_keys = current_keys
+            if reload_keys(live) is None:
+                log.info("keys file reloaded (file-change)")
 
 
 def arm_shares(snapshot: RegistrySnapshot) -> dict[tuple[str, str], float]:

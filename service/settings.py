@@ -52,6 +52,9 @@ class Settings(BaseSettings):
     collapse_min_steps: int = Field(
         default=50, ge=1, description="rows needed before the collapse watch decides"
     )
+    key_expiry_warning_days: float = Field(
+        default=14.0, ge=0.0, description="GET /v1/routes flags keys expiring within this many days"
+    )
     log_level: str = "info"
     shm_dir: Path | None = Field(
         default=None, description="folder of shared-memory segments callers may name; off if unset"

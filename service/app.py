@@ -25,7 +25,7 @@ from starlette.background import BackgroundTask
 from starlette.concurrency import run_in_threadpool
 from starlette.responses import Response
 
-from service import metrics, problems
+from service import drain, metrics, problems
 from service.bodies import (
     PickInput,
     check_limits,
@@ -96,6 +96,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         loop = asyncio.get_running_loop()
         with contextlib.suppress(NotImplementedError, RuntimeError, ValueError):
             loop.add_signal_handler(signal.SIGHUP, lambda: reload_now(live, "signal"))
+        drain.install(loop, settings.drain_seconds, partial(setattr, live, "draining", True))
         poller = asyncio.create_task(poll_registry(live))
         loader = asyncio.create_task(load_model(live))
         compiler = asyncio.create_task(warm_kernel(live))

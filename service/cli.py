@@ -13,6 +13,7 @@ from __future__ import annotations
 import argparse
 import datetime as dt
 import json
+import math
 import os
 import shutil
 import sys
@@ -235,7 +236,7 @@ def _serve(args: argparse.Namespace) -> int:
             loop="uvloop",
             http="httptools",
             log_level=settings.log_level,
-            timeout_graceful_shutdown=10,
+            timeout_graceful_shutdown=math.ceil(settings.shutdown_seconds),
         )
         return listen.run(config, settings.uds)
     finally:

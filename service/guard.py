@@ -1,7 +1,7 @@
-"""The guard in front of every handler: overload (429 with Retry-After), a declared body over
-the limit (413), reading bodies within the limit, and the request-duration metric with bounded
-endpoint labels. A plain ASGI middleware: the decorator form streams every body through extra
-tasks.
+"""The guard in front of every handler: a draining worker (503 with Retry-After), overload
+(429 with Retry-After), a declared body over the limit (413), reading bodies within the limit,
+and the request-duration metric with bounded endpoint labels. A plain ASGI middleware: the
+decorator form streams every body through extra tasks.
 """
 
 from __future__ import annotations
@@ -38,7 +38,8 @@ def endpoint_label(path: str) -> str:
 
 
 class Guard:
-    """Overload (429), declared body size (413) and request timing, before any handler runs."""
+    """Draining (503), overload (429), declared body size (413) and request timing, before any
+    handler runs."""
 
     def __init__(self, app: Any, live: Live):
         self.app = app
@@ -59,7 +60,14 @@ class Guard:
             await send(message)
 
         problem: Problem | None = None
-        if path.startswith("/v1/") and live.in_flight >= live.settings.max_in_flight:
+        if path.startswith("/v1/") and live.draining:
+            problem = Problem(
+                503,
+                "draining",
+                "this worker is shutting down; retry (another replica or its successor answers)",
+                headers={"Retry-After": str(live.settings.retry_after_seconds)},
+            )
+        elif path.startswith("/v1/") and live.in_flight >= live.settings.max_in_flight:
             problem = Problem(
                 429,
                 "overloaded",

@@ -55,6 +55,12 @@ class Settings(BaseSettings):
     key_expiry_warning_days: float = Field(
         default=14.0, ge=0.0, description="GET /v1/routes flags keys expiring within this many days"
     )
+    drain_seconds: float = Field(
+        default=5.0, ge=0.0, description="after SIGTERM: readiness 503, in-flight work finishes"
+    )
+    shutdown_seconds: float = Field(
+        default=20.0, ge=0.0, description="after the drain: the most in-flight work may still take"
+    )
     log_level: str = "info"
     shm_dir: Path | None = Field(
         default=None, description="folder of shared-memory segments callers may name; off if unset"

@@ -155,6 +155,7 @@ def start_server(
         "KEEPSET_HOST": "127.0.0.1",
         "KEEPSET_WORKERS": str(workers),
         "KEEPSET_LOG_LEVEL": "warning",
+        "KEEPSET_DRAIN_SECONDS": "0",  # test_drain sets its own; others need no drain to stop
         **({"KEEPSET_UDS": str(uds)} if uds is not None else {}),
         **env,
     }

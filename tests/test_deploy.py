@@ -72,6 +72,17 @@ def test_probes_ports_and_keys_match_the_service() -> None:
     assert secret_keys == yaml.safe_load((ROOT / "deploy" / "demo-keys.yaml").read_text())
 
 
+def test_the_grace_period_covers_the_drain_and_the_shutdown() -> None:
+    env = {e["name"]: e["value"] for e in container()["env"]}
+    pod = of_kind("Deployment")["spec"]["template"]["spec"]
+    drain = float(env.get("KEEPSET_DRAIN_SECONDS", Settings.model_fields["drain_seconds"].default))
+    shutdown = float(
+        env.get("KEEPSET_SHUTDOWN_SECONDS", Settings.model_fields["shutdown_seconds"].default)
+    )
+    # A few seconds over: the kubelet's SIGKILL must never cut a stream the drain let finish.
+    assert pod["terminationGracePeriodSeconds"] >= drain + shutdown + 3
+
+
 def test_containerfile_copies_what_exists_and_runs_the_cli() -> None:
     text = CONTAINERFILE.read_text()
     sources = [

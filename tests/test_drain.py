@@ -1,0 +1,115 @@
+"""Graceful drain on a real two-worker ``keepset serve``: after SIGTERM readiness is 503 at once,
+new requests get 503 with Retry-After, liveness stays 200, every stream in flight ends with its
+``done`` event (also one that outlasts the drain), and the process exits within the drain plus
+the shutdown time."""
+
+from __future__ import annotations
+
+import signal
+import subprocess
+import sys
+import threading
+import time
+from collections.abc import Iterator
+from pathlib import Path
+from typing import Any
+
+import httpx
+import pytest
+from conftest import Server, assert_problem, auth, start_server, stop_server
+from test_continue_server import LONG_TAKE, sse_events
+
+DRAIN_SECONDS = 2.0
+SHUTDOWN_SECONDS = 20.0
+
+
+@pytest.fixture
+def draining_server(registry: Path) -> Iterator[Server]:
+    (registry / "long-take").mkdir()
+    (registry / "long-take" / "1.yaml").write_text(LONG_TAKE)
+    publish = [sys.executable, "-m", "service.cli", "policy", "publish", str(registry)]
+    subprocess.run([*publish, "long-take"], check=True, capture_output=True)
+    routes = (registry / "routes.yaml").read_text()
+    (registry / "routes.yaml").write_text(routes.replace("box-office@1", "long-take@1"))
+    running = start_server(
+        registry,
+        workers=2,
+        KEEPSET_DRAIN_SECONDS=str(DRAIN_SECONDS),
+        KEEPSET_SHUTDOWN_SECONDS=str(SHUTDOWN_SECONDS),
+    )
+    yield running
+    if running.process.poll() is None:
+        stop_server(running)
+
+
+def _stream(base: str, budget: int, started: threading.Event, out: dict[str, Any]) -> None:
+    body = {"prompt": "Enter the porter, with a lantern.", "seed": budget, "budget": budget}
+    body["stream"] = True
+    steps = 0
+    try:
+        with httpx.stream(
+            "POST", f"{base}/v1/continue", json=body, headers=auth("usher-desk"), timeout=60
+        ) as response:
+            out["status"] = response.status_code
+            for event, data in sse_events(response.iter_lines()):
+                if event == "step":
+                    steps += 1
+                    started.set()
+                elif event == "done":
+                    out["done"] = data
+                    out["done_at"] = time.monotonic()
+    except httpx.HTTPError as exc:
+        out["error"] = repr(exc)
+    out["steps"] = steps
+    started.set()
+
+
+def test_sigterm_drains_then_exits(draining_server: Server) -> None:
+    base = draining_server.base_url
+    # Short streams end within the drain; the long one outlasts it and must still end whole.
+    budgets = [120, 120, 120, 2500]
+    results: list[dict[str, Any]] = [{} for _ in budgets]
+    started = [threading.Event() for _ in budgets]
+    threads = [
+        threading.Thread(target=_stream, args=(base, b, s, r))
+        for b, s, r in zip(budgets, started, results, strict=True)
+    ]
+    for thread in threads:
+        thread.start()
+    for event in started:
+        assert event.wait(30), "a stream never started"
+    assert not any("done" in r for r in results), "streams ended before SIGTERM; budgets too small"
+
+    sigterm_at = time.monotonic()
+    draining_server.process.send_signal(signal.SIGTERM)
+    # Readiness goes to 503 at once on both workers (each connection may reach either).
+    deadline = sigterm_at + 1.0
+    ready_codes: list[int] = []
+    while time.monotonic() < deadline:
+        ready_codes.append(httpx.get(f"{base}/readyz", timeout=2).status_code)
+        if ready_codes[-3:] == [503, 503, 503]:
+            break
+    assert ready_codes[-3:] == [503, 503, 503], ready_codes
+    assert httpx.get(f"{base}/healthz", timeout=2).status_code == 200
+    refused = httpx.post(
+        f"{base}/v1/pick", json={"logits": [0.0, 1.0]}, headers=auth("usher-desk"), timeout=5
+    )
+    assert_problem(refused, 503, "shutting down")
+    assert refused.headers["retry-after"] == "1"
+
+    for thread in threads:
+        thread.join(SHUTDOWN_SECONDS + DRAIN_SECONDS + 10)
+    for budget, result in zip(budgets, results, strict=True):
+        assert "error" not in result, result
+        assert result["status"] == 200
+        done = result["done"]  # dropped: 0; every stream ends with its done event
+        assert done["finish"] == "budget" and len(done["tokens"]) == budget == result["steps"]
+    assert results[-1]["done_at"] > sigterm_at + DRAIN_SECONDS  # it did outlast the drain
+
+    draining_server.process.wait(SHUTDOWN_SECONDS + DRAIN_SECONDS + 10)
+    exited_after = time.monotonic() - sigterm_at
+    assert exited_after < DRAIN_SECONDS + SHUTDOWN_SECONDS + 5, exited_after
+    assert "draining for 2 s" in draining_server.log_text()
+    # Nothing listens any more.
+    with pytest.raises(httpx.ConnectError):
+        httpx.get(f"{base}/healthz", timeout=2)

@@ -199,19 +199,36 @@ def read_policy_file(root: Path, path: Path) -> Policy:
     return policy
 
 
+def readable_root(root: Path) -> Path:
+    """The folder to read a registry from. A Kubernetes ConfigMap volume keeps its files in a
+    timestamped folder that ``..data`` points to, and an update swaps ``..data`` in one rename:
+    reading every file through ``..data`` resolved once gives one version of the whole registry,
+    never old files beside new ones."""
+    data = root / "..data"
+    return data.resolve() if data.is_symlink() else root
+
+
 def load_registry(root: Path) -> RegistrySnapshot:
     root = Path(root)
     fingerprint = RegistrySnapshot.fingerprint_of(root)
-    refused: list[Refusal] = []
     if not root.is_dir():
-        refused.append(Refusal(str(root), "the registry folder does not exist"))
-        return RegistrySnapshot(root, {}, {}, {}, (), tuple(refused), fingerprint)
-    lock, lock_problems = read_lock(root)
+        refusal = Refusal(str(root), "the registry folder does not exist")
+        return RegistrySnapshot(root, {}, {}, {}, (), (refusal,), fingerprint)
+    try:
+        return _load(root, readable_root(root), fingerprint)
+    except OSError as exc:  # a file that vanished mid-read (an old ConfigMap folder removed)
+        refusal = Refusal(str(root), f"the registry could not be read: {exc}")
+        return RegistrySnapshot(root, {}, {}, {}, (), (refusal,), fingerprint)
+
+
+def _load(root: Path, source: Path, fingerprint: str) -> RegistrySnapshot:
+    refused: list[Refusal] = []
+    lock, lock_problems = read_lock(source)
     refused += lock_problems
     candidates: dict[Ref, tuple[str, Policy]] = {}
     seen_files: set[Ref] = set()
-    for path in policy_files(root):
-        rel = str(path.relative_to(root))
+    for path in policy_files(source):
+        rel = str(path.relative_to(source))
         data = path.read_bytes()
         if path.stem.isdigit():
             key = (path.parent.name, int(path.stem))
@@ -234,7 +251,7 @@ def load_registry(root: Path) -> RegistrySnapshot:
                 )
                 continue
         try:
-            policy = read_policy_file(root, path)
+            policy = read_policy_file(source, path)
         except PolicyFileError as exc:
             refused.append(
                 Refusal(rel, "; ".join(f"{f}: {m}" if f else m for f, m in exc.problems))
@@ -247,7 +264,7 @@ def load_registry(root: Path) -> RegistrySnapshot:
         )
     policies, chains, fallback_refusals = _link_fallbacks(candidates)
     refused += fallback_refusals
-    routes, route_refusals = _load_routes(root, policies)
+    routes, route_refusals = _load_routes(source, policies)
     refused += route_refusals
     loaded = tuple(rel for ref, (rel, _) in sorted(candidates.items()) if ref in policies)
     return RegistrySnapshot(

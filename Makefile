@@ -4,7 +4,7 @@ VENV := .venv
 BIN := $(VENV)/bin
 STAMP := $(VENV)/.installed
 
-.PHONY: run demo test lint prometheus bench clean
+.PHONY: run demo test lint prometheus bench faults clean
 
 $(STAMP): pyproject.toml
 	$(PY) -m venv $(VENV)
@@ -36,6 +36,11 @@ bench: $(STAMP)
 	$(BIN)/python loadtest/bench_http.py
 	$(BIN)/python loadtest/bench_transport.py
 	$(BIN)/python loadtest/bench_continue.py
+
+# Load and fault runs on loopback with a table of figures against their bounds (about 15 min,
+# 10 of them the soak); --quick in ARGS for a short try.
+faults: $(STAMP)
+	$(BIN)/python loadtest/faults.py $(ARGS)
 
 clean:
 	rm -rf $(VENV) .pytest_cache .mypy_cache .ruff_cache .hypothesis

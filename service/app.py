@@ -33,6 +33,7 @@ from service.bodies import (
     input_problem,
     pick_input,
 )
+from service.capture import Capture, Origin, warn_if_off
 from service.guard import Guard
 from service.keys import Identity, load_keyring, utc_now
 from service.live import (
@@ -79,12 +80,16 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         raise ValueError("KEEPSET_COLLAPSE_MIN_STEPS must not exceed KEEPSET_COLLAPSE_WINDOW")
     if settings.shm_dir is not None and not settings.shm_dir.is_dir():
         raise ValueError(f"KEEPSET_SHM_DIR={settings.shm_dir} is not a folder")
+    if settings.capture_dir is not None and not settings.capture_dir.is_dir():
+        raise ValueError(f"KEEPSET_CAPTURE_DIR={settings.capture_dir} is not a folder")
     live = Live(
         settings=settings,
         snapshot=snapshot,
         keys=load_keyring(settings.keys),
         watch=CollapseWatch(settings.collapse_window, settings.collapse_min_steps),
+        capture=None if settings.capture_dir is None else Capture(settings.capture_dir),
     )
+    warn_if_off(snapshot.routes, settings.capture_dir)
     if not snapshot.valid:
         log.warning("registry loaded with problems: %s", snapshot.problem_lines())
     metrics.set_arm_weights(arm_shares(snapshot))
@@ -100,6 +105,8 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         poller = asyncio.create_task(poll_registry(live))
         loader = asyncio.create_task(load_model(live))
         compiler = asyncio.create_task(warm_kernel(live))
+        if live.capture is not None:
+            live.capture.start()
         yield
         live.draining = True
         poller.cancel()
@@ -109,6 +116,8 @@ def create_app(settings: Settings | None = None) -> FastAPI:
             await loader
         with contextlib.suppress(Exception):
             await compiler
+        if live.capture is not None:  # writes the rows it still holds
+            await run_in_threadpool(live.capture.close)
 
     app = FastAPI(
         title="keepset",
@@ -192,6 +201,11 @@ def _add_routes(app: FastAPI, live: Live) -> None:
         served = serve(snapshot, client, route, body.routing_key, body.adjust, live)
         policy = served.policy
         budget = policy.budget if body.budget is None else min(body.budget, policy.budget)
+        capturing = (
+            live.capture is not None
+            and route.capture is not None
+            and live.capture.sample(route.capture)
+        )
         try:
             # Tokenizing a long prompt takes a while: off the event loop.
             run = await run_in_threadpool(
@@ -203,7 +217,7 @@ def _add_routes(app: FastAPI, live: Live) -> None:
                     budget=budget,
                     seed=body.seed,
                     stop=policy.stop,
-                    keep_logits=bool(route.shadow),
+                    keep_logits=bool(route.shadow) or capturing,
                     cancel=threading.Event(),
                     kernel=live.kernel,
                 )
@@ -226,7 +240,10 @@ def _add_routes(app: FastAPI, live: Live) -> None:
         }
         if served.clamped:
             head["clamped"] = served.clamped
-        after = BackgroundTask(after_continuation, live, snapshot, route, client, served, run)
+        captured = head["request_id"] if capturing else None
+        after = BackgroundTask(
+            after_continuation, live, snapshot, route, client, served, run, captured
+        )
         if body.stream:
             return StreamingResponse(
                 _event_stream(head, run),
@@ -341,8 +358,17 @@ async def _pick_answer(
     except InputError as exc:
         raise input_problem(exc) from None
     record_served(live, client, served, out.kept.tolist(), out.entropy.tolist(), out.fallback)
+    request_id = uuid.uuid4().hex
+    if route.capture is not None and live.capture is not None:
+        # Before the request ends: shared-memory rows are copied (to float16) while still valid.
+        origin = Origin(client, request_id, policy.name, policy.version, label, out.seed)
+        offer = partial(live.capture.offer_pick, route.capture, origin, rows, data.history, out)
+        if rows.size <= _INLINE_ELEMENTS:
+            offer()
+        else:
+            await run_in_threadpool(offer)
     body: dict[str, Any] = {
-        "request_id": uuid.uuid4().hex,
+        "request_id": request_id,
         "client": client,
         "policy": policy.name,
         "version": policy.version,

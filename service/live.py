@@ -18,6 +18,7 @@ from typing import Any
 from starlette.concurrency import run_in_threadpool
 
 from service import metrics
+from service.capture import Capture, warn_if_off
 from service.keys import KeyRing, load_keyring
 from service.model import Model, ModelError
 from service.registry import RegistrySnapshot, reload_registry
@@ -47,6 +48,8 @@ class Live:
     # The sampling path; "compiled" only once its warm-up has compiled (or loaded) the kernel.
     kernel: Kernel = "numpy"
     kernel_problem: str | None = "the sampling kernel is compiling"
+    # Set when KEEPSET_CAPTURE_DIR is: this worker's capture of served rows.
+    capture: Capture | None = None
 
 
 def reload_now(live: Live, trigger: str) -> dict[str, Any]:
@@ -55,6 +58,8 @@ def reload_now(live: Live, trigger: str) -> dict[str, Any]:
     snapshot, report = reload_registry(live.snapshot, live.settings.policies)
     live.snapshot = snapshot
     metrics.set_arm_weights(arm_shares(snapshot))
+    if report.ok:
+        warn_if_off(snapshot.routes, live.settings.capture_dir)
     keys_problem = reload_keys(live)
     outcome = "loaded" if report.ok and keys_problem is None else "kept_last_good"
     metrics.REGISTRY_RELOADS.labels(outcome).inc()

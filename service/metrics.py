@@ -93,6 +93,29 @@ ARM_WEIGHT = Gauge(
     multiprocess_mode="livemostrecent",
 )
 
+CAPTURE_ROWS = Counter(
+    "keepset_capture_rows",
+    "Served rows written to capture shards, by client.",
+    ["client"],
+)
+CAPTURE_DROPPED = Counter(
+    "keepset_capture_dropped_rows",
+    "Sampled rows not captured, by client and reason (queue_full, write_error, too_large).",
+    ["client", "reason"],
+)
+CAPTURE_PRUNED = Counter(
+    "keepset_capture_pruned_shards",
+    "Capture shards deleted to keep a client's folder within its max_mb.",
+    ["client"],
+)
+CAPTURE_BYTES = Gauge(
+    "keepset_capture_bytes",
+    "Bytes of capture shards on disk per client, as last measured by a worker.",
+    ["client"],
+    # Every worker measures the same folder; the largest recent measure is the safe one.
+    multiprocess_mode="livemax",
+)
+
 
 def observe_rows(
     *,

@@ -9,6 +9,7 @@ a request without a key is assigned at random in proportion to the weights.
 from __future__ import annotations
 
 import hashlib
+import math
 import random
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
@@ -35,10 +36,24 @@ class Arm:
 
 
 @dataclass(frozen=True)
+class CaptureRule:
+    """A route's opt-in capture of served rows: the share of rows sampled, and the disk the
+    client's shards may take (megabytes of 10**6 bytes)."""
+
+    rate: float
+    max_mb: float
+
+    @property
+    def max_bytes(self) -> int:
+        return int(self.max_mb * 1_000_000)
+
+
+@dataclass(frozen=True)
 class Route:
     client: str
     arms: tuple[Arm, ...]
     shadow: tuple[Ref, ...] = ()
+    capture: CaptureRule | None = None
 
     @property
     def total_weight(self) -> int:
@@ -93,8 +108,14 @@ def parse_routes(data: Any, known: set[Ref]) -> tuple[dict[str, Route], list[Any
 
 def _route(client: str, spec: Any, known: set[Ref]) -> Route:
     check_name(client)
-    if not isinstance(spec, Mapping) or set(spec) - {"arms", "shadow"} or "arms" not in spec:
-        raise ValueError("expected {arms: [...], shadow: [...]} (shadow optional)")
+    if (
+        not isinstance(spec, Mapping)
+        or set(spec) - {"arms", "shadow", "capture"}
+        or "arms" not in spec
+    ):
+        raise ValueError(
+            "expected {arms: [...], shadow: [...], capture: {...}} (shadow, capture optional)"
+        )
     arms_spec = spec["arms"]
     if not isinstance(arms_spec, list) or not arms_spec:
         raise ValueError("arms: expected a non-empty list")
@@ -125,7 +146,25 @@ def _route(client: str, spec: Any, known: set[Ref]) -> Route:
     if not isinstance(shadow_spec, list):
         raise ValueError("shadow: expected a list of name@version")
     shadow = tuple(_known_ref(s, known, f"shadow[{i}]") for i, s in enumerate(shadow_spec))
-    return Route(client, tuple(arms), shadow)
+    capture = _capture_rule(spec["capture"]) if "capture" in spec else None
+    return Route(client, tuple(arms), shadow, capture)
+
+
+def _capture_rule(spec: Any) -> CaptureRule:
+    if not isinstance(spec, Mapping) or set(spec) != {"rate", "max_mb"}:
+        raise ValueError(
+            "capture: expected {rate: 0 < r <= 1, max_mb: n > 0}, both keys and no other"
+        )
+    rate, max_mb = spec["rate"], spec["max_mb"]
+    if not _is_number(rate) or not 0 < rate <= 1:
+        raise ValueError(f"capture.rate: expected a number with 0 < rate <= 1, got {rate!r}")
+    if not _is_number(max_mb) or not 0 < max_mb < math.inf:
+        raise ValueError(f"capture.max_mb: expected a positive number of megabytes, got {max_mb!r}")
+    return CaptureRule(float(rate), float(max_mb))
+
+
+def _is_number(value: Any) -> bool:
+    return isinstance(value, int | float) and not isinstance(value, bool) and not math.isnan(value)
 
 
 def _known_ref(text: Any, known: set[Ref], where: str) -> Ref:

@@ -12,6 +12,7 @@ from typing import Any
 import numpy as np
 
 from service import metrics
+from service.capture import Origin
 from service.live import Live
 from service.policy import AdjustError, Policy, apply_adjust
 from service.problems import Problem
@@ -115,15 +116,21 @@ def after_continuation(
     client: str,
     served: Served,
     run: PromptRun,
+    captured: str | None = None,
 ) -> None:
     """Metrics for every generated step (as for /v1/pick rows), then the shadow policies on the
-    same logits, after the answer has gone out."""
+    same logits, after the answer has gone out; ``captured`` is the answer's request_id when
+    this continuation was sampled for capture."""
     records = list(run.records)  # a cancelled stream's last step may still be landing
     if not records:
         return
     kept = [r.kept for r in records]
     fallback = [r.fallback for r in records]
     record_served(live, client, served, kept, [r.entropy for r in records], fallback)
+    if captured and live.capture and route.capture and run.logits is not None:
+        p = served.policy
+        origin = Origin(client, captured, p.name, p.version, served.label, run.seed)
+        live.capture.offer_steps(route.capture, origin, run.logits, run.histories, records)
     if route.shadow and run.logits:
         rows = np.stack(run.logits[: len(records)])
         histories = run.histories[: len(records)]

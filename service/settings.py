@@ -68,8 +68,11 @@ class Settings(BaseSettings):
     uds: Path | None = Field(
         default=None, description="Unix domain socket to listen on besides host and port"
     )
+    capture_dir: Path | None = Field(
+        default=None, description="folder of captured rows for routes with capture; off if unset"
+    )
 
-    @field_validator("shm_dir", "uds", mode="before")
+    @field_validator("shm_dir", "uds", "capture_dir", mode="before")
     @classmethod
     def _empty_is_off(cls, value: object) -> object:
         # A manifest that sets the variable to "" means "off", not the current directory.

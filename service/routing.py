@@ -9,6 +9,7 @@ a request without a key is assigned at random in proportion to the weights.
 from __future__ import annotations
 
 import hashlib
+import math
 import random
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
@@ -34,11 +35,34 @@ class Arm:
         return self.label if self.label is not None else str(index)
 
 
+# How long a collapse guard serves its fallback at the least, unless routes.yaml says otherwise.
+DEFAULT_HOLD_SECONDS = 30.0
+
+
+@dataclass(frozen=True)
+class GuardSpec:
+    """A route's collapse guard: the version that serves while an arm's version is collapsed,
+    the least time it serves once engaged, and how far above the version's
+    ``expect.kept_median_min`` its kept median must be back before the arm serves again."""
+
+    fallback: Ref
+    hold_seconds: float = DEFAULT_HOLD_SECONDS
+    recover_margin: float = 0.0
+
+    def describe(self) -> dict[str, Any]:
+        return {
+            "fallback": format_ref(*self.fallback),
+            "hold_seconds": self.hold_seconds,
+            "recover_margin": self.recover_margin,
+        }
+
+
 @dataclass(frozen=True)
 class Route:
     client: str
     arms: tuple[Arm, ...]
     shadow: tuple[Ref, ...] = ()
+    guard: GuardSpec | None = None
 
     @property
     def total_weight(self) -> int:
@@ -93,8 +117,14 @@ def parse_routes(data: Any, known: set[Ref]) -> tuple[dict[str, Route], list[Any
 
 def _route(client: str, spec: Any, known: set[Ref]) -> Route:
     check_name(client)
-    if not isinstance(spec, Mapping) or set(spec) - {"arms", "shadow"} or "arms" not in spec:
-        raise ValueError("expected {arms: [...], shadow: [...]} (shadow optional)")
+    if (
+        not isinstance(spec, Mapping)
+        or set(spec) - {"arms", "shadow", "guard"}
+        or "arms" not in spec
+    ):
+        raise ValueError(
+            "expected {arms: [...], shadow: [...], guard: {...}} (shadow, guard optional)"
+        )
     arms_spec = spec["arms"]
     if not isinstance(arms_spec, list) or not arms_spec:
         raise ValueError("arms: expected a non-empty list")
@@ -125,7 +155,33 @@ def _route(client: str, spec: Any, known: set[Ref]) -> Route:
     if not isinstance(shadow_spec, list):
         raise ValueError("shadow: expected a list of name@version")
     shadow = tuple(_known_ref(s, known, f"shadow[{i}]") for i, s in enumerate(shadow_spec))
-    return Route(client, tuple(arms), shadow)
+    guard = None if spec.get("guard") is None else _guard(spec["guard"], known)
+    return Route(client, tuple(arms), shadow, guard)
+
+
+def _guard(spec: Any, known: set[Ref]) -> GuardSpec:
+    keys = {"fallback", "hold_seconds", "recover_margin"}
+    if not isinstance(spec, Mapping) or set(spec) - keys or "fallback" not in spec:
+        raise ValueError(
+            "guard: expected {fallback: name@version, hold_seconds: n, recover_margin: n} "
+            "(hold_seconds and recover_margin optional)"
+        )
+    return GuardSpec(
+        _known_ref(spec["fallback"], known, "guard.fallback"),
+        _non_negative(spec.get("hold_seconds", DEFAULT_HOLD_SECONDS), "guard.hold_seconds"),
+        _non_negative(spec.get("recover_margin", 0.0), "guard.recover_margin"),
+    )
+
+
+def _non_negative(value: Any, where: str) -> float:
+    if (
+        isinstance(value, bool)
+        or not isinstance(value, int | float)
+        or not math.isfinite(value)
+        or value < 0
+    ):
+        raise ValueError(f"{where}: expected a number >= 0, got {value!r}")
+    return float(value)
 
 
 def _known_ref(text: Any, known: set[Ref], where: str) -> Ref:

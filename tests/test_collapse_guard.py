@@ -462,3 +462,59 @@ def test_guard_on_the_prompt_path(registry: Path) -> None:
                 "prompt-book@6",
             )
         assert done["tokens"] == second["tokens"]
+
+
+def test_a_collapsed_fallback_keeps_serving_and_is_counted(
+    registry: Path, caplog: pytest.LogCaptureFixture
+) -> None:
+    """One logit of 5: prompt-book@4 keeps one token (exp(-5/0.9) = 0.004 < 0.05, min-p) and so
+    does program-notes@1 (temperature 0.7, top_k 40, then top_p 0.9: of the 40 survivors the top
+    token alone has mass 1 / (1 + 39 exp(-5/0.7)) = 0.97 >= 0.9, Holtzman et al. 2020), whose
+    promise is 2 as well."""
+    caplog.set_level(logging.INFO, logger="keepset")
+    guarded_routes(
+        registry,
+        {"fallback": "program-notes@1", "hold_seconds": 0},
+        arms=[{"policy": "prompt-book@4", "weight": 100, "label": "candidate"}],
+    )
+    row = [5.0] + [0.0] * 999
+    counted = {"client": CLIENT, "policy": "program-notes", "version": "1"}
+    with in_process(registry, collapse_window=10, collapse_min_steps=10) as client:
+        before = sample("keepset_guard_fallback_collapsed_total", **counted)
+        answers = [
+            client.post("/v1/pick", json={"logits": [row]}, headers=auth(CLIENT)).json()
+            for _ in range(25)
+        ]
+    # 10 rows collapse prompt-book@4; the next 10 go to program-notes@1 and collapse it; the
+    # last 5 are still answered by it, each counted.
+    assert [a["version"] for a in answers] == [4] * 10 + [1] * 15
+    assert all(a["guarded_from"] == "prompt-book@4" for a in answers[10:])
+    assert all(a["rows"][0]["kept"] == 1 for a in answers)
+    assert sample("keepset_guard_fallback_collapsed_total", **counted) == before + 5
+    warned = [r for r in caplog.records if "fallback collapsed too" in r.getMessage()]
+    assert len(warned) == 1 and "fallback=program-notes@1" in warned[0].getMessage()
+
+
+def test_rows_the_fallback_cannot_take_are_served_unguarded(registry: Path) -> None:
+    """A fallback that bans token 1500 cannot pick on a vocabulary of 1000 (DESIGN.md: a 422
+    for the request); the guard leaves those rows to the routed version instead."""
+    notes = yaml.safe_load((registry / "program-notes" / "1.yaml").read_text())
+    notes.update(version=2, chain=[*notes["chain"], {"ban": [1500]}])
+    publish(registry, notes)
+    guarded_routes(
+        registry,
+        {"fallback": "program-notes@2", "hold_seconds": 0},
+        arms=[{"policy": "prompt-book@4", "weight": 100, "label": "candidate"}],
+    )
+    with in_process(registry, collapse_window=4, collapse_min_steps=4) as client:
+
+        def send(vocab: int) -> Any:
+            body = {"logits": [[3.0] + [0.0] * (vocab - 1)], "seed": 1}
+            r = client.post("/v1/pick", json=body, headers=auth(CLIENT))
+            assert r.status_code == 200, r.text
+            return r.json()
+
+        assert [send(1000)["version"] for _ in range(4)] == [4] * 4  # now collapsed
+        narrow, wide = send(1000), send(2000)
+    assert narrow["version"] == 4 and "guarded" not in narrow
+    assert (wide["policy"], wide["version"], wide["guarded"]) == ("program-notes", 2, True)

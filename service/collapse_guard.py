@@ -105,6 +105,8 @@ class CollapseGuard:
             return None
         key = (client, version)
         collapsed = version in watch.active()
+        if not collapsed and key not in self._engaged:
+            return None  # the common case, without computing a median
         window = watch.median(*version)
         median, rows = window if window is not None else (None, 0)
         with self._lock:

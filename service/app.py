@@ -34,6 +34,7 @@ from service.bodies import (
     pick_input,
 )
 from service.capture import Capture, Origin, warn_if_off
+from service.fallback_serving import after_pick, after_run, guard_request
 from service.guard import Guard
 from service.keys import Identity, load_keyring, utc_now
 from service.live import (
@@ -199,6 +200,9 @@ def _add_routes(app: FastAPI, live: Live) -> None:
         if model is None:
             raise Problem(503, "model-not-ready", live.model_problem or "the model is not loaded")
         served = serve(snapshot, client, route, body.routing_key, body.adjust, live)
+        vocab = model.info.vocab_size
+        guarding = guard_request(live, snapshot, client, route, served, body.adjust, vocab)
+        served = guarding.served
         policy = served.policy
         budget = policy.budget if body.budget is None else min(body.budget, policy.budget)
         capturing = (
@@ -217,7 +221,7 @@ def _add_routes(app: FastAPI, live: Live) -> None:
                     budget=budget,
                     seed=body.seed,
                     stop=policy.stop,
-                    keep_logits=bool(route.shadow) or capturing,
+                    keep_logits=bool(route.shadow) or capturing or guarding.guarded is not None,
                     cancel=threading.Event(),
                     kernel=live.kernel,
                 )
@@ -240,10 +244,13 @@ def _add_routes(app: FastAPI, live: Live) -> None:
         }
         if served.clamped:
             head["clamped"] = served.clamped
+        head.update(guarding.answer_fields())
         captured = head["request_id"] if capturing else None
         after = BackgroundTask(
             after_continuation, live, snapshot, route, client, served, run, captured
         )
+        if route.guard is not None:
+            after = after_run(after, live, client, route, guarding, run)
         if body.stream:
             return StreamingResponse(
                 _event_stream(head, run),
@@ -347,6 +354,8 @@ async def _pick_answer(
     request's logits ends with this frame, except what the shadows get."""
     rows = check_limits(data.logits, live)
     served = serve(snapshot, client, route, data.routing_key, data.adjust, live)
+    guarding = guard_request(live, snapshot, client, route, served, data.adjust, rows.shape[1])
+    served = guarding.served
     chain, policy, label, clamped = served.chain, served.policy, served.label, served.clamped
     try:
         args = (chain, rows, data.seed, data.history)
@@ -390,6 +399,7 @@ async def _pick_answer(
     }
     if clamped:
         body["clamped"] = clamped
+    body.update(guarding.answer_fields())
     shadow = None
     if route.shadow:
         # Shadows run after the answer, when the caller may already be writing its next step
@@ -397,6 +407,15 @@ async def _pick_answer(
         shadow_rows = rows.copy() if data.mapped is not None and data.mapped.shared else rows
         shadow = BackgroundTask(
             run_shadows, snapshot, route.shadow, shadow_rows, data.history, out.seed, live.kernel
+        )
+    if route.guard is not None:
+        # The guarded version is evaluated on these rows after the answer: its own copy of
+        # shared-memory rows, as for the shadows.
+        kept_rows = None
+        if guarding.guarded is not None:
+            kept_rows = rows.copy() if data.mapped is not None and data.mapped.shared else rows
+        shadow = after_pick(
+            shadow, live, client, route, guarding, kept_rows, data.history, out.seed
         )
     return JSONResponse(body, background=shadow)
 

@@ -19,6 +19,7 @@ from starlette.concurrency import run_in_threadpool
 
 from service import metrics
 from service.capture import Capture, warn_if_off
+from service.collapse_guard import CollapseGuard
 from service.keys import KeyRing, load_keyring
 from service.model import Model, ModelError
 from service.registry import RegistrySnapshot, reload_registry
@@ -45,6 +46,8 @@ class Live:
     # Set once loading has ended either way; prompt requests that arrive earlier wait for it.
     model_settled: asyncio.Event = field(default_factory=asyncio.Event)
     watch: CollapseWatch = field(default_factory=CollapseWatch)
+    # Which clients' routed versions the collapse guard currently serves a fallback for.
+    collapse_guard: CollapseGuard = field(default_factory=CollapseGuard)
     # The sampling path; "compiled" only once its warm-up has compiled (or loaded) the kernel.
     kernel: Kernel = "numpy"
     kernel_problem: str | None = "the sampling kernel is compiling"

@@ -92,6 +92,22 @@ ARM_WEIGHT = Gauge(
     # The newest write wins: a worker that has just reloaded knows the current weights.
     multiprocess_mode="livemostrecent",
 )
+GUARD_ACTIVE = Gauge(
+    "keepset_guard_active",
+    "1 while a client's collapse guard serves its fallback instead of this policy version.",
+    ["client", "policy", "version"],
+    multiprocess_mode="livemax",
+)
+GUARD_TRANSITIONS = Counter(
+    "keepset_guard_transitions",
+    "Collapse guard changes for a client's policy version, by new state (engaged, released).",
+    ["client", "policy", "version", "to"],
+)
+GUARD_FALLBACK_COLLAPSED = Counter(
+    "keepset_guard_fallback_collapsed",
+    "Guarded requests served by a fallback version that is itself collapsed (it still serves).",
+    ["client", "policy", "version"],
+)
 
 CAPTURE_ROWS = Counter(
     "keepset_capture_rows",

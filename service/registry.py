@@ -100,6 +100,7 @@ class RegistrySnapshot:
                         for i, arm in enumerate(route.arms)
                     ],
                     "shadow": [format_ref(*ref) for ref in route.shadow],
+                    **({"guard": route.guard.describe()} if route.guard is not None else {}),
                 }
                 for client, route in sorted(self.routes.items())
             }

@@ -35,6 +35,28 @@ class Arm:
         return self.label if self.label is not None else str(index)
 
 
+# How long a collapse guard serves its fallback at the least, unless routes.yaml says otherwise.
+DEFAULT_HOLD_SECONDS = 30.0
+
+
+@dataclass(frozen=True)
+class GuardSpec:
+    """A route's collapse guard: the version that serves while an arm's version is collapsed,
+    the least time it serves once engaged, and how far above the version's
+    ``expect.kept_median_min`` its kept median must be back before the arm serves again."""
+
+    fallback: Ref
+    hold_seconds: float = DEFAULT_HOLD_SECONDS
+    recover_margin: float = 0.0
+
+    def describe(self) -> dict[str, Any]:
+        return {
+            "fallback": format_ref(*self.fallback),
+            "hold_seconds": self.hold_seconds,
+            "recover_margin": self.recover_margin,
+        }
+
+
 @dataclass(frozen=True)
 class CaptureRule:
     """A route's opt-in capture of served rows: the share of rows sampled, and the disk the
@@ -54,6 +76,7 @@ class Route:
     arms: tuple[Arm, ...]
     shadow: tuple[Ref, ...] = ()
     capture: CaptureRule | None = None
+    guard: GuardSpec | None = None
 
     @property
     def total_weight(self) -> int:
@@ -110,11 +133,12 @@ def _route(client: str, spec: Any, known: set[Ref]) -> Route:
     check_name(client)
     if (
         not isinstance(spec, Mapping)
-        or set(spec) - {"arms", "shadow", "capture"}
+        or set(spec) - {"arms", "shadow", "capture", "guard"}
         or "arms" not in spec
     ):
         raise ValueError(
-            "expected {arms: [...], shadow: [...], capture: {...}} (shadow, capture optional)"
+            "expected {arms: [...], shadow: [...], capture: {...}, guard: {...}} "
+            "(all but arms optional)"
         )
     arms_spec = spec["arms"]
     if not isinstance(arms_spec, list) or not arms_spec:
@@ -147,7 +171,8 @@ def _route(client: str, spec: Any, known: set[Ref]) -> Route:
         raise ValueError("shadow: expected a list of name@version")
     shadow = tuple(_known_ref(s, known, f"shadow[{i}]") for i, s in enumerate(shadow_spec))
     capture = _capture_rule(spec["capture"]) if "capture" in spec else None
-    return Route(client, tuple(arms), shadow, capture)
+    guard = None if spec.get("guard") is None else _guard(spec["guard"], known)
+    return Route(client, tuple(arms), shadow, capture, guard)
 
 
 def _capture_rule(spec: Any) -> CaptureRule:
@@ -165,6 +190,31 @@ def _capture_rule(spec: Any) -> CaptureRule:
 
 def _is_number(value: Any) -> bool:
     return isinstance(value, int | float) and not isinstance(value, bool) and not math.isnan(value)
+
+
+def _guard(spec: Any, known: set[Ref]) -> GuardSpec:
+    keys = {"fallback", "hold_seconds", "recover_margin"}
+    if not isinstance(spec, Mapping) or set(spec) - keys or "fallback" not in spec:
+        raise ValueError(
+            "guard: expected {fallback: name@version, hold_seconds: n, recover_margin: n} "
+            "(hold_seconds and recover_margin optional)"
+        )
+    return GuardSpec(
+        _known_ref(spec["fallback"], known, "guard.fallback"),
+        _non_negative(spec.get("hold_seconds", DEFAULT_HOLD_SECONDS), "guard.hold_seconds"),
+        _non_negative(spec.get("recover_margin", 0.0), "guard.recover_margin"),
+    )
+
+
+def _non_negative(value: Any, where: str) -> float:
+    if (
+        isinstance(value, bool)
+        or not isinstance(value, int | float)
+        or not math.isfinite(value)
+        or value < 0
+    ):
+        raise ValueError(f"{where}: expected a number >= 0, got {value!r}")
+    return float(value)
 
 
 def _known_ref(text: Any, known: set[Ref], where: str) -> Ref:

@@ -92,6 +92,12 @@ def record_served(
         entropy=entropy,
         fallback=fallback,
     )
+    watch_kept(live, policy, kept)
+
+
+def watch_kept(live: Live, policy: Policy, kept: list[int]) -> None:
+    """Feed kept sizes of rows evaluated under ``policy`` to the collapse watch; its transitions
+    become the ``keepset_collapse_active`` gauge and one log line each."""
     floor = policy.expect.kept_median_min
     if floor is None:  # the owner made no promise to watch
         return

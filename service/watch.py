@@ -66,3 +66,12 @@ class CollapseWatch:
 
     def active(self) -> set[Key]:
         return set(self._active)
+
+    def median(self, policy: str, version: int) -> tuple[float, int] | None:
+        """The median kept size in the window and how many rows it holds, once the window holds
+        at least ``min_steps`` (the collapse guard's recovery check reads it)."""
+        recent = self._recent.get((policy, version))
+        if recent is None or len(recent) < self.min_steps:
+            return None
+        values = np.fromiter(recent, dtype=np.int64, count=len(recent))
+        return float(np.median(values)), len(recent)

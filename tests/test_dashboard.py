@@ -180,6 +180,8 @@ def test_dashboard_has_the_panels_operators_need() -> None:
         "histogram_quantile(0.99, sum by (le) (rate(keepset_request_duration_seconds_bucket",
         'code=~"5.."',
         "keepset_collapse_active",
+        "max by (client, policy, version) (keepset_guard_active",
+        "keepset_guard_transitions_total",
     ):
         assert needle in queries, needle
     heatmaps = [p for p in all_panels(load_dashboard()["panels"]) if p["type"] == "heatmap"]

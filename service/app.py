@@ -12,8 +12,8 @@ import asyncio
 import contextlib
 import logging
 import signal
+import sqlite3
 import threading
-import uuid
 from collections.abc import AsyncIterator
 from functools import partial
 from typing import Any
@@ -31,6 +31,7 @@ from service.bodies import (
     check_limits,
     continue_input,
     input_problem,
+    outcome_input,
     pick_input,
 )
 from service.guard import Guard
@@ -45,9 +46,17 @@ from service.live import (
     warm_kernel,
 )
 from service.model import PromptError, PromptTooLong
+from service.outcomes import (
+    OutcomeStore,
+    add_outcome_report,
+    check_outcome,
+    open_store,
+    save_outcome,
+)
 from service.problems import Problem
 from service.prompting import Cancelled, PromptRun, StepRecord
 from service.registry import RegistrySnapshot, load_registry
+from service.request_ids import RequestIds, new_secret
 from service.routing import Route
 from service.sampling import InputError, pick
 from service.serving import (
@@ -79,11 +88,15 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         raise ValueError("KEEPSET_COLLAPSE_MIN_STEPS must not exceed KEEPSET_COLLAPSE_WINDOW")
     if settings.shm_dir is not None and not settings.shm_dir.is_dir():
         raise ValueError(f"KEEPSET_SHM_DIR={settings.shm_dir} is not a folder")
+    secret = settings.request_secret
     live = Live(
         settings=settings,
         snapshot=snapshot,
         keys=load_keyring(settings.keys),
         watch=CollapseWatch(settings.collapse_window, settings.collapse_min_steps),
+        # Without a configured secret (an app made in process) ids are valid for this app only.
+        request_ids=RequestIds(new_secret() if secret is None else secret.get_secret_value()),
+        outcomes=_outcome_store(settings),
     )
     if not snapshot.valid:
         log.warning("registry loaded with problems: %s", snapshot.problem_lines())
@@ -108,6 +121,8 @@ def create_app(settings: Settings | None = None) -> FastAPI:
             await loader
         with contextlib.suppress(Exception):
             await compiler
+        if live.outcomes is not None:
+            live.outcomes.close()
 
     app = FastAPI(
         title="keepset",
@@ -120,6 +135,13 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     _install_middleware(app, live)
     _add_routes(app, live)
     return app
+
+
+def _outcome_store(settings: Settings) -> OutcomeStore:
+    try:
+        return open_store(settings.outcomes_db)
+    except sqlite3.Error as exc:
+        raise ValueError(f"KEEPSET_OUTCOMES_DB={settings.outcomes_db}: {exc}") from None
 
 
 def _install_middleware(app: FastAPI, live: Live) -> None:
@@ -208,7 +230,7 @@ def _add_routes(app: FastAPI, live: Live) -> None:
         except (PromptError, InputError) as exc:
             raise Problem(422, "bad-prompt", str(exc)) from None
         head: dict[str, Any] = {
-            "request_id": uuid.uuid4().hex,
+            "request_id": live.request_ids.mint(client, policy.name, policy.version, served.label),
             "client": client,
             "policy": policy.name,
             "version": policy.version,
@@ -248,6 +270,20 @@ def _add_routes(app: FastAPI, live: Live) -> None:
             background=after,
         )
 
+    @app.post("/v1/outcome", status_code=201, summary="Report the outcome of a served request")
+    async def report_outcome(request: Request) -> JSONResponse:
+        client = _client(request, live)
+        route = route_of(live.snapshot, client)
+        body = await outcome_input(request, live)
+        max_age = live.settings.outcome_max_age_seconds
+        outcome = check_outcome(live.request_ids, client, route, body, max_age)
+        store = live.outcomes
+        if store is None:
+            raise Problem(503, "outcomes-off", "this app has no outcome store")
+        await run_in_threadpool(save_outcome, store, outcome)
+        metrics.OUTCOMES.labels(client, outcome.arm).inc()
+        return JSONResponse(outcome.as_dict(), status_code=201)
+
     @app.get("/v1/policies", summary="Every published policy version")
     async def list_policies(request: Request) -> dict[str, Any]:
         _identity(request, live)
@@ -273,7 +309,14 @@ def _add_routes(app: FastAPI, live: Live) -> None:
     @app.get("/v1/routes", summary="Routes and arms (admin)")
     async def routes(request: Request) -> dict[str, Any]:
         _admin(request, live)
-        return routes_with_ratio(live.snapshot)
+        snapshot = live.snapshot
+        described = routes_with_ratio(snapshot)
+        if live.outcomes is None:
+            return described
+        since = "start" if live.settings.outcomes_db is None else "KEEPSET_OUTCOMES_DB"
+        return await run_in_threadpool(
+            add_outcome_report, described, snapshot.routes, live.outcomes, since
+        )
 
     @app.post("/v1/registry/reload", summary="Reload the registry (admin)")
     async def reload(request: Request) -> JSONResponse:
@@ -334,7 +377,7 @@ async def _pick_answer(
         raise input_problem(exc) from None
     record_served(live, client, served, out.kept.tolist(), out.entropy.tolist(), out.fallback)
     body: dict[str, Any] = {
-        "request_id": uuid.uuid4().hex,
+        "request_id": live.request_ids.mint(client, policy.name, policy.version, label),
         "client": client,
         "policy": policy.name,
         "version": policy.version,

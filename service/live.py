@@ -18,7 +18,9 @@ from starlette.concurrency import run_in_threadpool
 from service import metrics
 from service.keys import KeyRing
 from service.model import Model, ModelError
+from service.outcomes import OutcomeStore
 from service.registry import RegistrySnapshot, reload_registry
+from service.request_ids import RequestIds, new_secret
 from service.sampling import Kernel, kernel_available, warm_up
 from service.settings import Settings
 from service.watch import CollapseWatch
@@ -45,6 +47,9 @@ class Live:
     # The sampling path; "compiled" only once its warm-up has compiled (or loaded) the kernel.
     kernel: Kernel = "numpy"
     kernel_problem: str | None = "the sampling kernel is compiling"
+    # Mints and checks request ids; the secret is KEEPSET_REQUEST_SECRET's when set.
+    request_ids: RequestIds = field(default_factory=lambda: RequestIds(new_secret()))
+    outcomes: OutcomeStore | None = None
 
 
 def reload_now(live: Live, trigger: str) -> dict[str, Any]:

@@ -92,6 +92,11 @@ ARM_WEIGHT = Gauge(
     # The newest write wins: a worker that has just reloaded knows the current weights.
     multiprocess_mode="livemostrecent",
 )
+OUTCOMES = Counter(
+    "keepset_outcomes",
+    "Outcomes reported by clients for the requests they were served, by client and arm.",
+    ["client", "arm"],
+)
 
 
 def observe_rows(

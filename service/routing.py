@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import hashlib
 import random
+import re
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
@@ -39,6 +40,8 @@ class Route:
     client: str
     arms: tuple[Arm, ...]
     shadow: tuple[Ref, ...] = ()
+    # Labels a client may report as outcomes (``outcomes: {labels: [...]}``); none by default.
+    outcome_labels: tuple[str, ...] = ()
 
     @property
     def total_weight(self) -> int:
@@ -93,8 +96,15 @@ def parse_routes(data: Any, known: set[Ref]) -> tuple[dict[str, Route], list[Any
 
 def _route(client: str, spec: Any, known: set[Ref]) -> Route:
     check_name(client)
-    if not isinstance(spec, Mapping) or set(spec) - {"arms", "shadow"} or "arms" not in spec:
-        raise ValueError("expected {arms: [...], shadow: [...]} (shadow optional)")
+    if (
+        not isinstance(spec, Mapping)
+        or set(spec) - {"arms", "shadow", "outcomes"}
+        or "arms" not in spec
+    ):
+        raise ValueError(
+            "expected {arms: [...], shadow: [...], outcomes: {labels: [...]}} "
+            "(shadow and outcomes optional)"
+        )
     arms_spec = spec["arms"]
     if not isinstance(arms_spec, list) or not arms_spec:
         raise ValueError("arms: expected a non-empty list")
@@ -125,7 +135,30 @@ def _route(client: str, spec: Any, known: set[Ref]) -> Route:
     if not isinstance(shadow_spec, list):
         raise ValueError("shadow: expected a list of name@version")
     shadow = tuple(_known_ref(s, known, f"shadow[{i}]") for i, s in enumerate(shadow_spec))
-    return Route(client, tuple(arms), shadow)
+    outcomes = _outcome_labels(spec["outcomes"]) if "outcomes" in spec else ()
+    return Route(client, tuple(arms), shadow, outcome_labels=outcomes)
+
+
+OUTCOME_LABEL = re.compile(r"[a-z][a-z0-9_-]{0,31}")
+MAX_OUTCOME_LABELS = 16
+
+
+def _outcome_labels(spec: Any) -> tuple[str, ...]:
+    """A route's ``outcomes: {labels: [name, ...]}``: the labels its client may report."""
+    if not isinstance(spec, Mapping) or set(spec) != {"labels"}:
+        raise ValueError("outcomes: expected {labels: [name, ...]}")
+    labels = spec["labels"]
+    if not isinstance(labels, list) or not 1 <= len(labels) <= MAX_OUTCOME_LABELS:
+        raise ValueError(f"outcomes.labels: expected a list of 1 to {MAX_OUTCOME_LABELS} names")
+    for i, label in enumerate(labels):
+        if not isinstance(label, str) or not OUTCOME_LABEL.fullmatch(label):
+            raise ValueError(
+                f"outcomes.labels[{i}]: expected a lowercase letter, then up to 31 of a-z, 0-9,"
+                f" '_' and '-'; got {label!r}"
+            )
+    if len(set(labels)) != len(labels):
+        raise ValueError("outcomes.labels: a label is listed twice")
+    return tuple(labels)
 
 
 def _known_ref(text: Any, known: set[Ref], where: str) -> Ref:

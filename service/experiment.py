@@ -164,9 +164,18 @@ def t_sf(t: float, dof: float) -> float:
     return half if t >= 0 else 1.0 - half
 
 
+def t_density(t: float, dof: float) -> float:
+    """The Student t density: (1 + t^2/dof)^(-(dof+1)/2) / (sqrt(dof) B(dof/2, 1/2))."""
+    return math.exp(
+        -0.5 * (dof + 1.0) * math.log1p(t * t / dof)
+        - 0.5 * math.log(dof)
+        - log_beta(dof / 2.0, 0.5)
+    )
+
+
 def t_quantile(probability: float, dof: float) -> float:
-    """The t with P(T <= t) = ``probability`` (0.5 <= probability < 1), by bisection on the tail:
-    the report needs it once per interval, so robustness beats speed."""
+    """The t with P(T <= t) = ``probability`` (0.5 <= probability < 1): Newton's method on the
+    two-sided tail, kept inside a bracket that bisection shrinks whenever a step leaves it."""
     if not 0.5 <= probability < 1.0 or dof <= 0:
         raise ValueError("expected 0.5 <= probability < 1 and dof > 0")
     target = 2.0 * (1.0 - probability)  # two-sided tail at the answer
@@ -175,15 +184,21 @@ def t_quantile(probability: float, dof: float) -> float:
     low, high = 0.0, 2.0
     while t_two_sided(high, dof) > target:
         low, high = high, high * 2.0
+    t = 0.5 * (low + high)
     for _ in range(200):
-        middle = 0.5 * (low + high)
-        if middle in (low, high):
-            break
-        if t_two_sided(middle, dof) > target:
-            low = middle
+        excess = t_two_sided(t, dof) - target  # decreasing in t
+        if excess > 0:
+            low = t
         else:
-            high = middle
-    return 0.5 * (low + high)
+            high = t
+        step = excess / (2.0 * t_density(t, dof))
+        guess = t + step
+        if not low < guess < high:
+            guess = 0.5 * (low + high)
+        if abs(guess - t) <= 1e-15 * t or high - low <= 1e-15 * high:
+            return guess
+        t = guess
+    return t
 
 
 def chi2_1_sf(x: float) -> float:

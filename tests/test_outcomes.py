@@ -9,6 +9,7 @@ import base64
 import json
 import os
 import random
+import shutil
 import subprocess
 import sys
 import time
@@ -21,6 +22,7 @@ import numpy as np
 import pytest
 from conftest import (
     DEMO_KEYS,
+    ROOT,
     assert_problem,
     auth,
     in_process,
@@ -29,6 +31,8 @@ from conftest import (
     wait_ready,
 )
 from fastapi.testclient import TestClient
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
 from scipy import stats
 
 from service.client import AsyncClient, Client, KeepsetError
@@ -431,3 +435,51 @@ def _check_python_client(base: str) -> None:
             assert (recorded.arm, recorded.value) == (picked.arm, 4.0)
 
     asyncio.run(run())
+
+
+_JSON = st.recursive(
+    st.none() | st.booleans() | st.integers(-(2**70), 2**70) | st.floats() | st.text(max_size=20),
+    lambda inner: st.lists(inner, max_size=4) | st.dictionaries(st.text(max_size=8), inner),
+    max_leaves=12,
+)
+
+
+@pytest.fixture(scope="module")
+def fuzz_app(tmp_path_factory: pytest.TempPathFactory) -> Iterator[TestClient]:
+    registry = Path(tmp_path_factory.mktemp("outcome-fuzz")) / "policies"
+    shutil.copytree(ROOT / "policies", registry)
+    with in_process(registry) as client:
+        yield client
+
+
+@settings(
+    max_examples=200,
+    deadline=None,
+    derandomize=True,
+    suppress_health_check=[HealthCheck.function_scoped_fixture, HealthCheck.too_slow],
+)
+@given(
+    fields=st.fixed_dictionaries(
+        {},
+        optional={
+            "request_id": st.one_of(st.just("REAL"), st.text(max_size=80), _JSON),
+            "value": st.one_of(st.floats(), st.integers(-(2**70), 2**70), _JSON),
+            "label": st.one_of(st.sampled_from(["accepted", "rejected", "other"]), _JSON),
+            "extra": _JSON,
+        },
+    )
+)
+def test_fuzzed_outcome_bodies_get_a_problem_or_are_recorded(
+    fuzz_app: TestClient, fields: dict[str, Any]
+) -> None:
+    if fields.get("request_id") == "REAL":
+        fields["request_id"] = _pick(fuzz_app)["request_id"]
+    # The standard encoder writes NaN and Infinity, as many clients' encoders do.
+    body = json.dumps(fields).encode()
+    response = fuzz_app.post(
+        "/v1/outcome", content=body, headers={**auth(BOOK), "Content-Type": "application/json"}
+    )
+    if response.status_code == 201:
+        return
+    assert response.status_code in (400, 404, 409, 422), response.text
+    assert_problem(response, response.status_code)

@@ -12,8 +12,8 @@ import asyncio
 import contextlib
 import logging
 import signal
+import sqlite3
 import threading
-import uuid
 from collections.abc import AsyncIterator
 from functools import partial
 from typing import Any
@@ -31,6 +31,7 @@ from service.bodies import (
     check_limits,
     continue_input,
     input_problem,
+    outcome_input,
     pick_input,
 )
 from service.capture import Capture, Origin, warn_if_off
@@ -47,9 +48,17 @@ from service.live import (
     warm_kernel,
 )
 from service.model import PromptError, PromptTooLong
+from service.outcomes import (
+    OutcomeStore,
+    add_outcome_report,
+    check_outcome,
+    open_store,
+    save_outcome,
+)
 from service.problems import Problem
 from service.prompting import Cancelled, PromptRun, StepRecord
 from service.registry import RegistrySnapshot, load_registry
+from service.request_ids import RequestIds, new_secret
 from service.routing import Route
 from service.sampling import InputError, pick
 from service.serving import (
@@ -83,12 +92,16 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         raise ValueError(f"KEEPSET_SHM_DIR={settings.shm_dir} is not a folder")
     if settings.capture_dir is not None and not settings.capture_dir.is_dir():
         raise ValueError(f"KEEPSET_CAPTURE_DIR={settings.capture_dir} is not a folder")
+    secret = settings.request_secret
     live = Live(
         settings=settings,
         snapshot=snapshot,
         keys=load_keyring(settings.keys),
         watch=CollapseWatch(settings.collapse_window, settings.collapse_min_steps),
         capture=None if settings.capture_dir is None else Capture(settings.capture_dir),
+        # Without a configured secret (an app made in process) ids are valid for this app only.
+        request_ids=RequestIds(new_secret() if secret is None else secret.get_secret_value()),
+        outcomes=_outcome_store(settings),
     )
     warn_if_off(snapshot.routes, settings.capture_dir)
     if not snapshot.valid:
@@ -119,6 +132,8 @@ def create_app(settings: Settings | None = None) -> FastAPI:
             await compiler
         if live.capture is not None:  # writes the rows it still holds
             await run_in_threadpool(live.capture.close)
+        if live.outcomes is not None:
+            live.outcomes.close()
 
     app = FastAPI(
         title="keepset",
@@ -131,6 +146,13 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     _install_middleware(app, live)
     _add_routes(app, live)
     return app
+
+
+def _outcome_store(settings: Settings) -> OutcomeStore:
+    try:
+        return open_store(settings.outcomes_db)
+    except sqlite3.Error as exc:
+        raise ValueError(f"KEEPSET_OUTCOMES_DB={settings.outcomes_db}: {exc}") from None
 
 
 def _install_middleware(app: FastAPI, live: Live) -> None:
@@ -233,7 +255,7 @@ def _add_routes(app: FastAPI, live: Live) -> None:
         except (PromptError, InputError) as exc:
             raise Problem(422, "bad-prompt", str(exc)) from None
         head: dict[str, Any] = {
-            "request_id": uuid.uuid4().hex,
+            "request_id": live.request_ids.mint(client, policy.name, policy.version, served.label),
             "client": client,
             "policy": policy.name,
             "version": policy.version,
@@ -279,6 +301,20 @@ def _add_routes(app: FastAPI, live: Live) -> None:
             background=after,
         )
 
+    @app.post("/v1/outcome", status_code=201, summary="Report the outcome of a served request")
+    async def report_outcome(request: Request) -> JSONResponse:
+        client = _client(request, live)
+        route = route_of(live.snapshot, client)
+        body = await outcome_input(request, live)
+        max_age = live.settings.outcome_max_age_seconds
+        outcome = check_outcome(live.request_ids, client, route, body, max_age)
+        store = live.outcomes
+        if store is None:
+            raise Problem(503, "outcomes-off", "this app has no outcome store")
+        await run_in_threadpool(save_outcome, store, outcome)
+        metrics.OUTCOMES.labels(client, outcome.arm).inc()
+        return JSONResponse(outcome.as_dict(), status_code=201)
+
     @app.get("/v1/policies", summary="Every published policy version")
     async def list_policies(request: Request) -> dict[str, Any]:
         _identity(request, live)
@@ -304,8 +340,16 @@ def _add_routes(app: FastAPI, live: Live) -> None:
     @app.get("/v1/routes", summary="Routes and arms (admin)")
     async def routes(request: Request) -> dict[str, Any]:
         _admin(request, live)
-        keys = live.keys.describe(utc_now(), live.settings.key_expiry_warning_days)
-        return {**routes_with_ratio(live.snapshot), "keys": keys}
+        _admin(request, live)
+        snapshot = live.snapshot
+        described = routes_with_ratio(snapshot)
+        described["keys"] = live.keys.describe(utc_now(), live.settings.key_expiry_warning_days)
+        if live.outcomes is None:
+            return described
+        since = "start" if live.settings.outcomes_db is None else "KEEPSET_OUTCOMES_DB"
+        return await run_in_threadpool(
+            add_outcome_report, described, snapshot.routes, live.outcomes, since
+        )
 
     @app.post("/v1/registry/reload", summary="Reload the registry (admin)")
     async def reload(request: Request) -> JSONResponse:
@@ -367,7 +411,7 @@ async def _pick_answer(
     except InputError as exc:
         raise input_problem(exc) from None
     record_served(live, client, served, out.kept.tolist(), out.entropy.tolist(), out.fallback)
-    request_id = uuid.uuid4().hex
+    request_id = live.request_ids.mint(client, policy.name, policy.version, label)
     if route.capture is not None and live.capture is not None:
         # Before the request ends: shared-memory rows are copied (to float16) while still valid.
         origin = Origin(client, request_id, policy.name, policy.version, label, out.seed)

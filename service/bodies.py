@@ -20,6 +20,7 @@ from pydantic import BaseModel, ConfigDict, Field, StrictInt, ValidationError
 from service.guard import read_body
 from service.live import Live
 from service.npy import NpyError, read_npy
+from service.outcomes import OutcomeBody
 from service.problems import Problem
 from service.sampling import InputError, as_batch
 from service.settings import Settings
@@ -231,3 +232,18 @@ async def continue_input(request: Request, live: Live) -> ContinueBody:
 
 def _is_json_error(exc: ValidationError) -> bool:
     return any(e["type"] == "json_invalid" for e in exc.errors())
+
+
+async def outcome_input(request: Request, live: Live) -> OutcomeBody:
+    media = request.headers.get("content-type", "").split(";")[0].strip().lower()
+    if media != "application/json":
+        raise Problem(415, "media-type", f"send application/json, not {media or 'no Content-Type'}")
+    body = await read_body(request, live)
+    try:
+        parsed = OutcomeBody.model_validate_json(body)
+    except ValidationError as exc:
+        kind = "malformed-json" if _is_json_error(exc) else "malformed"
+        raise Problem(400, kind, validation_text(exc)) from None
+    if parsed.value is None and parsed.label is None:
+        raise Problem(400, "malformed", "send a 'value', a 'label' or both")
+    return parsed

@@ -6,6 +6,7 @@ keepset policy publish DIR NAME                   add NAME's next version to pub
 keepset policy diff NAME@A NAME@B [--policies DIR]
 keepset policy schema [DIR]                       rewrite DIR/policy.schema.json
 keepset keys add CLIENT [--keys FILE] [--admin] [--rotate [--overlap-hours H]] [--expires-days D]
+keepset experiment report [--url URL] [--key KEY] [--client NAME] [--json]
 """
 
 from __future__ import annotations
@@ -15,6 +16,7 @@ import datetime as dt
 import json
 import math
 import os
+import secrets
 import shutil
 import sys
 import tempfile
@@ -95,6 +97,14 @@ def _parser() -> argparse.ArgumentParser:
         "--expires-days", type=float, default=None, help="the new key stops working after this"
     )
     add.set_defaults(run=_keys_add)
+
+    experiment = verbs.add_parser("experiment", help="A/B experiments").add_subparsers()
+    report = experiment.add_parser("report", help="outcomes per arm, tests against the control")
+    report.add_argument("--url", default="http://127.0.0.1:8411")
+    report.add_argument("--key", default=None, help="an admin key (default: KEEPSET_ADMIN_KEY)")
+    report.add_argument("--client", default=None, help="only this client")
+    report.add_argument("--json", action="store_true", help="the report as JSON")
+    report.set_defaults(run=_experiment_report)
     return parser
 
 
@@ -210,6 +220,36 @@ def _keys_add(args: argparse.Namespace) -> int:
     return 0
 
 
+def _experiment_report(args: argparse.Namespace) -> int:
+    import httpx
+
+    from service.report import render_report
+
+    key = args.key or os.environ.get("KEEPSET_ADMIN_KEY")
+    if not key:
+        raise ValueError("give an admin key with --key or KEEPSET_ADMIN_KEY")
+    try:
+        response = httpx.get(
+            f"{args.url.rstrip('/')}/v1/routes",
+            headers={"Authorization": f"Bearer {key}"},
+            timeout=30.0,
+        )
+    except httpx.HTTPError as exc:
+        raise ValueError(f"cannot reach {args.url}: {exc}") from None
+    if response.status_code != 200:
+        raise ValueError(f"{args.url}/v1/routes answered {response.status_code}: {response.text}")
+    clients: dict[str, Any] = response.json()["clients"]
+    if args.client is not None:
+        if args.client not in clients:
+            raise ValueError(f"no client {args.client!r}; known: {', '.join(sorted(clients))}")
+        clients = {args.client: clients[args.client]}
+    if args.json:
+        print(json.dumps({"clients": clients}, indent=2))
+    else:
+        print(render_report(clients))
+    return 0
+
+
 def _serve(args: argparse.Namespace) -> int:
     import uvicorn
 
@@ -220,6 +260,10 @@ def _serve(args: argparse.Namespace) -> int:
         if value is not None:
             os.environ[f"KEEPSET_{name.upper()}"] = str(value)
     settings = Settings()  # validates the flags and variables before anything starts
+    if settings.request_secret is None:
+        # Every worker must check the ids any worker minted: one secret per start, shared
+        # through the environment the workers inherit.
+        os.environ["KEEPSET_REQUEST_SECRET"] = secrets.token_hex(32)
     snapshot = load_registry(settings.policies)
     for line in snapshot.problem_lines():
         print(f"keepset: registry: {line}", file=sys.stderr)

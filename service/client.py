@@ -7,6 +7,7 @@
         reply = ks.continue_prompt("Enter the porter,", seed=7)
         for step in ks.stream_prompt("Enter the porter,"):
             print(step.text, end="")
+        ks.outcome(result.request_id, value=1.0, label="accepted")
 
 Logits travel as a raw ``.npy`` body (no JSON encoding of big arrays); the other fields go in
 the query string. Errors come back as :class:`KeepsetError` carrying the problem document.
@@ -114,6 +115,34 @@ def _head(data: Mapping[str, Any]) -> dict[str, Any]:
         "tokens": [int(t) for t in data["tokens"]],
         "clamped": list(data.get("clamped", [])),
     }
+
+
+@dataclass(frozen=True)
+class OutcomeReply:
+    """What keepset recorded for a reported outcome."""
+
+    request_id: str
+    client: str
+    policy: str
+    version: int
+    arm: str
+    value: float | None
+    label: str | None
+    issued: int
+    at: float
+
+    @classmethod
+    def from_json(cls, data: Mapping[str, Any]) -> OutcomeReply:
+        return cls(**{name: data[name] for name in cls.__dataclass_fields__})
+
+
+def _outcome_body(request_id: str, value: float | None, label: str | None) -> dict[str, Any]:
+    body: dict[str, Any] = {"request_id": request_id}
+    if value is not None:
+        body["value"] = float(value)
+    if label is not None:
+        body["label"] = label
+    return body
 
 
 class KeepsetError(Exception):
@@ -238,8 +267,8 @@ def _continue_body(
     return body
 
 
-def _check(response: httpx.Response) -> None:
-    if response.status_code != 200:
+def _check(response: httpx.Response, expected: int = 200) -> None:
+    if response.status_code != expected:
         try:
             problem = response.json()
         except ValueError:
@@ -358,6 +387,14 @@ class Client(_Connection):
                 if events.done:
                     return
 
+    def outcome(
+        self, request_id: str, value: float | None = None, label: str | None = None
+    ) -> OutcomeReply:
+        """Report the outcome of a request this client was served (once per request)."""
+        response = self._http.post("/v1/outcome", json=_outcome_body(request_id, value, label))
+        _check(response, 201)
+        return OutcomeReply.from_json(response.json())
+
     def close(self) -> None:
         """Close the connections and remove the client's segments."""
         if "_http" in self.__dict__:  # made on first use
@@ -429,6 +466,14 @@ class AsyncClient(_Connection):
                     yield step
                 if events.done:
                     return
+
+    async def outcome(
+        self, request_id: str, value: float | None = None, label: str | None = None
+    ) -> OutcomeReply:
+        body = _outcome_body(request_id, value, label)
+        response = await self._http.post("/v1/outcome", json=body)
+        _check(response, 201)
+        return OutcomeReply.from_json(response.json())
 
     async def aclose(self) -> None:
         """Close the connections and remove the client's segments."""

@@ -18,6 +18,7 @@ from service.problems import Problem
 _EXACT_ENDPOINTS = {
     "/v1/pick",
     "/v1/continue",
+    "/v1/outcome",
     "/v1/policies",
     "/v1/routes",
     "/v1/registry/reload",

@@ -22,7 +22,9 @@ from service.capture import Capture, warn_if_off
 from service.collapse_guard import CollapseGuard
 from service.keys import KeyRing, load_keyring
 from service.model import Model, ModelError
+from service.outcomes import OutcomeStore
 from service.registry import RegistrySnapshot, reload_registry
+from service.request_ids import RequestIds, new_secret
 from service.sampling import Kernel, kernel_available, warm_up
 from service.settings import Settings
 from service.watch import CollapseWatch
@@ -53,6 +55,9 @@ class Live:
     kernel_problem: str | None = "the sampling kernel is compiling"
     # Set when KEEPSET_CAPTURE_DIR is: this worker's capture of served rows.
     capture: Capture | None = None
+    # Mints and checks request ids; the secret is KEEPSET_REQUEST_SECRET's when set.
+    request_ids: RequestIds = field(default_factory=lambda: RequestIds(new_secret()))
+    outcomes: OutcomeStore | None = None
 
 
 def reload_now(live: Live, trigger: str) -> dict[str, Any]:

@@ -131,6 +131,11 @@ CAPTURE_BYTES = Gauge(
     # Every worker measures the same folder; the largest recent measure is the safe one.
     multiprocess_mode="livemax",
 )
+OUTCOMES = Counter(
+    "keepset_outcomes",
+    "Outcomes reported by clients for the requests they were served, by client and arm.",
+    ["client", "arm"],
+)
 
 
 def observe_rows(

@@ -23,6 +23,8 @@ _TITLES = {
     403: "Not allowed",
     404: "Not found",
     405: "Method not allowed",
+    409: "Conflict",
+    410: "Gone",
     413: "Too large",
     415: "Unsupported media type",
     422: "Invalid values",

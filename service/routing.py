@@ -11,6 +11,7 @@ from __future__ import annotations
 import hashlib
 import math
 import random
+import re
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
@@ -77,6 +78,8 @@ class Route:
     shadow: tuple[Ref, ...] = ()
     capture: CaptureRule | None = None
     guard: GuardSpec | None = None
+    # Labels a client may report as outcomes (``outcomes: {labels: [...]}``); none by default.
+    outcome_labels: tuple[str, ...] = ()
 
     @property
     def total_weight(self) -> int:
@@ -133,12 +136,12 @@ def _route(client: str, spec: Any, known: set[Ref]) -> Route:
     check_name(client)
     if (
         not isinstance(spec, Mapping)
-        or set(spec) - {"arms", "shadow", "capture", "guard"}
+        or set(spec) - {"arms", "shadow", "capture", "guard", "outcomes"}
         or "arms" not in spec
     ):
         raise ValueError(
-            "expected {arms: [...], shadow: [...], capture: {...}, guard: {...}} "
-            "(all but arms optional)"
+            "expected {arms: [...], shadow: [...], capture: {...}, guard: {...}, "
+            "outcomes: {labels: [...]}} (all but arms optional)"
         )
     arms_spec = spec["arms"]
     if not isinstance(arms_spec, list) or not arms_spec:
@@ -172,7 +175,8 @@ def _route(client: str, spec: Any, known: set[Ref]) -> Route:
     shadow = tuple(_known_ref(s, known, f"shadow[{i}]") for i, s in enumerate(shadow_spec))
     capture = _capture_rule(spec["capture"]) if "capture" in spec else None
     guard = None if spec.get("guard") is None else _guard(spec["guard"], known)
-    return Route(client, tuple(arms), shadow, capture, guard)
+    outcomes = _outcome_labels(spec["outcomes"]) if "outcomes" in spec else ()
+    return Route(client, tuple(arms), shadow, capture, guard, outcomes)
 
 
 def _capture_rule(spec: Any) -> CaptureRule:
@@ -215,6 +219,28 @@ def _non_negative(value: Any, where: str) -> float:
     ):
         raise ValueError(f"{where}: expected a number >= 0, got {value!r}")
     return float(value)
+
+
+OUTCOME_LABEL = re.compile(r"[a-z][a-z0-9_-]{0,31}")
+MAX_OUTCOME_LABELS = 16
+
+
+def _outcome_labels(spec: Any) -> tuple[str, ...]:
+    """A route's ``outcomes: {labels: [name, ...]}``: the labels its client may report."""
+    if not isinstance(spec, Mapping) or set(spec) != {"labels"}:
+        raise ValueError("outcomes: expected {labels: [name, ...]}")
+    labels = spec["labels"]
+    if not isinstance(labels, list) or not 1 <= len(labels) <= MAX_OUTCOME_LABELS:
+        raise ValueError(f"outcomes.labels: expected a list of 1 to {MAX_OUTCOME_LABELS} names")
+    for i, label in enumerate(labels):
+        if not isinstance(label, str) or not OUTCOME_LABEL.fullmatch(label):
+            raise ValueError(
+                f"outcomes.labels[{i}]: expected a lowercase letter, then up to 31 of a-z, 0-9,"
+                f" '_' and '-'; got {label!r}"
+            )
+    if len(set(labels)) != len(labels):
+        raise ValueError("outcomes.labels: a label is listed twice")
+    return tuple(labels)
 
 
 def _known_ref(text: Any, known: set[Ref], where: str) -> Ref:

@@ -10,7 +10,7 @@ from __future__ import annotations
 from pathlib import Path
 from typing import Literal
 
-from pydantic import Field, field_validator
+from pydantic import Field, SecretStr, field_validator
 from pydantic_settings import BaseSettings, SettingsConfigDict
 
 _PACKAGE = Path(__file__).resolve().parent
@@ -71,6 +71,22 @@ class Settings(BaseSettings):
     capture_dir: Path | None = Field(
         default=None, description="folder of captured rows for routes with capture; off if unset"
     )
+
+    request_secret: SecretStr | None = Field(
+        default=None,
+        description="key of the request ids' MAC; keepset serve makes one per start if unset",
+    )
+    outcomes_db: Path | None = Field(
+        default=None, description="SQLite file of outcomes; one per start of keepset serve if unset"
+    )
+    outcome_max_age_seconds: int = Field(
+        default=7 * 24 * 3600, ge=60, description="outcomes are taken this long after a request"
+    )
+
+    @field_validator("request_secret", "outcomes_db", mode="before")
+    @classmethod
+    def _empty_is_unset(cls, value: object) -> object:
+        return None if value == "" else value
 
     @field_validator("shm_dir", "uds", "capture_dir", mode="before")
     @classmethod

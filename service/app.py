@@ -85,6 +85,7 @@ _INLINE_ELEMENTS = 1 << 20
 
 def create_app(settings: Settings | None = None) -> FastAPI:
     settings = settings or Settings()
+    _log_to_stderr(settings.log_level)
     snapshot = load_registry(settings.policies)
     if settings.collapse_min_steps > settings.collapse_window:
         raise ValueError("KEEPSET_COLLAPSE_MIN_STEPS must not exceed KEEPSET_COLLAPSE_WINDOW")
@@ -153,6 +154,17 @@ def _outcome_store(settings: Settings) -> OutcomeStore:
         return open_store(settings.outcomes_db)
     except sqlite3.Error as exc:
         raise ValueError(f"KEEPSET_OUTCOMES_DB={settings.outcomes_db}: {exc}") from None
+
+
+def _log_to_stderr(level: str) -> None:
+    """uvicorn configures its own loggers only: without a handler of its own, keepset's INFO
+    lines (a recovery, a reload, a guard released) would never reach a worker's output."""
+    logger = logging.getLogger("keepset")
+    if not logger.handlers:
+        handler = logging.StreamHandler()
+        handler.setFormatter(logging.Formatter("%(levelname)s:     keepset: %(message)s"))
+        logger.addHandler(handler)
+    logger.setLevel(level.upper())
 
 
 def _install_middleware(app: FastAPI, live: Live) -> None:

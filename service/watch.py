@@ -11,6 +11,7 @@ Each worker process watches the rows it served; the gauge takes the max over liv
 
 from __future__ import annotations
 
+import threading
 from collections import deque
 from collections.abc import Sequence
 from dataclasses import dataclass, field
@@ -38,6 +39,9 @@ class CollapseWatch:
     min_steps: int = 50
     _recent: dict[Key, deque[int]] = field(default_factory=dict)
     _active: set[Key] = field(default_factory=set)
+    # Picks feed the watch from the event loop, continuations from a worker thread after their
+    # answer: one lock, so a transition is reported once and a window is never read mid-change.
+    _lock: threading.Lock = field(default_factory=threading.Lock)
 
     def __post_init__(self) -> None:
         if self.window < 1 or not 1 <= self.min_steps <= self.window:
@@ -47,7 +51,10 @@ class CollapseWatch:
         self, policy: str, version: int, kept: Sequence[int], floor: float
     ) -> Transition | None:
         """Add served rows' kept sizes; return the transition they cause, if any."""
-        key = (policy, version)
+        with self._lock:
+            return self._observe((policy, version), kept, floor)
+
+    def _observe(self, key: Key, kept: Sequence[int], floor: float) -> Transition | None:
         recent = self._recent.get(key)
         if recent is None:
             recent = self._recent[key] = deque(maxlen=self.window)
@@ -62,16 +69,18 @@ class CollapseWatch:
             self._active.add(key)
         else:
             self._active.discard(key)
-        return Transition(policy, version, collapsed, median, floor, len(recent))
+        return Transition(key[0], key[1], collapsed, median, floor, len(recent))
 
     def active(self) -> set[Key]:
-        return set(self._active)
+        with self._lock:
+            return set(self._active)
 
     def median(self, policy: str, version: int) -> tuple[float, int] | None:
         """The median kept size in the window and how many rows it holds, once the window holds
         at least ``min_steps`` (the collapse guard's recovery check reads it)."""
-        recent = self._recent.get((policy, version))
-        if recent is None or len(recent) < self.min_steps:
-            return None
-        values = np.fromiter(recent, dtype=np.int64, count=len(recent))
+        with self._lock:
+            recent = self._recent.get((policy, version))
+            if recent is None or len(recent) < self.min_steps:
+                return None
+            values = np.fromiter(recent, dtype=np.int64, count=len(recent))
         return float(np.median(values)), len(recent)

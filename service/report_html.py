@@ -143,10 +143,15 @@ def _frame(axes: _Axes, y_ticks: Sequence[float]) -> list[str]:
 
 
 def _ticks(lo: float, hi: float, count: int = 5) -> list[float]:
+    """Round tick values (1, 2 or 5 times a power of ten apart) covering [lo, hi]."""
     if not hi > lo:
         return [lo]
-    step = (hi - lo) / (count - 1)
-    return [lo + i * step for i in range(count)]
+    raw = (hi - lo) / (count - 1)
+    power = 10.0 ** math.floor(math.log10(raw))
+    step = next(m * power for m in (1, 2, 5, 10) if m * power >= raw)
+    first = math.ceil(lo / step - 1e-9)
+    ticks = [k * step for k in range(first, math.floor(hi / step + 1e-9) + 1)]
+    return [float(f"{t:.10g}") for t in ticks]
 
 
 def _legend(names: Sequence[str], colours: Sequence[str]) -> list[str]:
@@ -154,6 +159,8 @@ def _legend(names: Sequence[str], colours: Sequence[str]) -> list[str]:
     for i, (name, c) in enumerate(zip(names, colours, strict=True)):
         y = TOP + 4 + i * 14
         out.append(
+            f'<rect x="{WIDTH - RIGHT - 154}" y="{y - 2}" width="154" height="14" '
+            'fill="#ffffff" fill-opacity="0.8"/>'
             f'<rect x="{WIDTH - RIGHT - 150}" y="{y}" width="10" height="10" fill="{c}"/>'
             f'<text x="{WIDTH - RIGHT - 136}" y="{y + 9}" font-size="10">{escape(name)}</text>'
         )
@@ -205,7 +212,7 @@ def _kept_plot(report: PreviewReport) -> str:
                 f'height="{HEIGHT - BOTTOM - y:.1f}" fill="{colour(v)}"/>'
             )
     labels = _bucket_labels(edges)
-    every = max(1, len(labels) // 10)
+    every = 1 if len(labels) <= 10 else 2
     for i, label in enumerate(labels):
         if i % every == 0:
             body.append(

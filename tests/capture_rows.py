@@ -60,15 +60,30 @@ def synthetic_traffic(
     return out
 
 
-def served_shard(snapshot: RegistrySnapshot, client: str, traffic: Sequence[Request]) -> Shard:
+def served_shard(
+    snapshot: RegistrySnapshot, client: str, traffic: Sequence[Request], vocab: int = 16
+) -> Shard:
     """The shard the capture would hold for ``traffic``: each request served by its policy's
-    chain with the real sampler."""
+    chain with the real sampler (``vocab`` sizes an empty shard)."""
     columns: dict[str, list[object]] = {
         k: []
-        for k in (
-            "seed stream source request_id policy arm version token kept entropy kept_mass "
-            "prob logprob fallback time"
-        ).split()
+        for k in [
+            "seed",
+            "stream",
+            "source",
+            "request_id",
+            "policy",
+            "arm",
+            "version",
+            "token",
+            "kept",
+            "entropy",
+            "kept_mass",
+            "prob",
+            "logprob",
+            "fallback",
+            "time",
+        ]
     }
     histories: list[list[int]] = []
     for i, req in enumerate(traffic):
@@ -111,7 +126,9 @@ def served_shard(snapshot: RegistrySnapshot, client: str, traffic: Sequence[Requ
     }
     return Shard(
         client=client,
-        logits=np.concatenate([r.logits for r in traffic]),
+        logits=np.concatenate([r.logits for r in traffic])
+        if traffic
+        else np.zeros((0, vocab), np.float16),
         history=np.array([t for h in histories for t in h], dtype=np.int32),
         history_offsets=np.concatenate(([0], np.cumsum(lengths))).astype(np.int64),
         **arrays,  # type: ignore[arg-type]

@@ -16,7 +16,7 @@ from service.preview import PreviewReport
 from service.report_text import cell, number
 
 PALETTE = ("#1f6fb2", "#d9622b", "#2a9d5c", "#8e44ad", "#b8860b", "#c0392b", "#17808a")
-MODEL_COLOUR = "#555555"
+MODEL_COLOUR = "#e0559a"
 WIDTH, HEIGHT = 560, 300
 LEFT, RIGHT, TOP, BOTTOM = 64, 16, 36, 52
 

@@ -163,6 +163,7 @@ def replay_shard(
 ) -> Replayed:
     """Replay ``chain`` on the first ``count`` rows of ``shard``."""
     histories = shard.histories()[:count]
+    logits = shard.logits[:count].astype(np.float32)  # once, not per request
     kept = np.empty(count, np.int64)
     tokens = np.empty(count, np.int64)
     entropy = np.empty(count)
@@ -170,10 +171,9 @@ def replay_shard(
     fallback = np.full(count, "", dtype="<U16")
     done = 0
     for run in request_runs(shard.seed[:count], shard.stream[:count]):
-        rows = shard.logits[run].astype(np.float32)
         out = pick(
             chain,
-            rows,
+            logits[run],
             int(shard.seed[run[0]]),
             [histories[i] for i in run],
             first_stream=int(shard.stream[run[0]]),
@@ -189,7 +189,7 @@ def replay_shard(
         done += run.size
         if progress is not None:
             progress(done)
-    policy_entropy = policy_entropies(chain, shard.logits[:count], histories, kernel)
+    policy_entropy = policy_entropies(chain, logits, histories, kernel)
     return Replayed(Rows(kept, entropy, policy_entropy, mass, fallback), tokens)
 
 
@@ -203,9 +203,7 @@ def policy_entropies(
     out = np.empty(logits.shape[0])
     for lo in range(0, logits.shape[0], _CHUNK):
         hi = min(lo + _CHUNK, logits.shape[0])
-        probs = final_distribution(
-            chain, logits[lo:hi].astype(np.float32), histories[lo:hi], kernel=kernel
-        )
+        probs = final_distribution(chain, logits[lo:hi], histories[lo:hi], kernel=kernel)
         out[lo:hi] = entropy_of(probs)
     return out
 

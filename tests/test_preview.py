@@ -483,3 +483,26 @@ def test_prompt_seeds_are_fixed_and_distinct() -> None:
     seeds = [prompt_seed(0, i) for i in range(100)]
     assert len(set(seeds)) == 100 and all(0 <= s < 2**53 for s in seeds)
     assert prompt_seed(0, 1) == prompt_seed(0, 1) != prompt_seed(1, 1)
+
+
+def test_prompt_mode_sweep_and_cli(
+    model: Model, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    snapshot = load_registry(ROOT / "policies")
+    prompts = ["The stage manager of the Lantern Row Players", "Backstage, the prompt-book"]
+    sweep = parse_sweep("temperature=0.5:1.0:0.5")
+    report = preview_prompts(
+        model, prompts, ["prompt-book@4"], snapshot, budget=4, resamples=10, sweep=sweep
+    )
+    assert report.sweep is not None and report.sweep.values == [0.5, 1.0]
+    assert set(report.sweep.distinct) == {"distinct_1", "distinct_2", "distinct_3", "repetition_2"}
+    # A hotter temperature flattens every row: the mean entropy after the policy grows.
+    assert report.sweep.entropy_policy[0] < report.sweep.entropy_policy[1]
+    file = tmp_path / "prompts.txt"
+    file.write_text("\n".join(prompts) + "\n", encoding="utf-8")
+    argv = ["policy", "preview", "prompt-book@3", "prompt-book@4", "--prompts", str(file)]
+    assert main([*argv, "--budget", "3", "--resamples", "10", "--json", "-"]) == 0
+    doc = json.loads(capsys.readouterr().out)
+    assert doc["mode"] == "prompts" and doc["units"] == 2
+    assert doc["statistics"]["prompt-book@4"]["length"]["value"] <= 3
+    assert "distinct_2" in doc["differences"]["prompt-book@4"]

@@ -30,7 +30,7 @@ from service.preview_stats import (
     Continuations,
     Indices,
     Rows,
-    continuation_statistics,
+    continuation_statistic,
     distinct,
     entropy_of,
     kept_histogram,
@@ -633,11 +633,12 @@ def preview_prompts(
 
 def _prompt_statistic(g: Generated) -> Callable[[Indices], dict[str, float]]:
     rows_of = unit_rows(g.lengths)
+    continuations = continuation_statistic(g.continuations)
 
     def statistic(idx: Indices) -> dict[str, float]:
         return {
             **row_statistics(g.rows.take(rows_of(idx))),
-            **continuation_statistics(g.continuations.take(idx)),
+            **continuations(idx),
         }
 
     return statistic

@@ -23,9 +23,10 @@ Continuation statistics (prompt mode):
 
 Intervals are percentile bootstrap intervals (Efron & Tibshirani 1993, ch. 13): resample the
 units (rows, or continuations with all their rows) with replacement, recompute the statistic,
-take the (1 - c) / 2 and (1 + c) / 2 quantiles of the recomputed values. Versions replayed on the
-same units share each resample's indices, so the difference between two versions is resampled
-in pairs.
+take the (1 - c) / 2 and (1 + c) / 2 quantiles of the recomputed values. Distinct-n is
+resampled as a ratio of per-continuation parts (see :func:`distinct_shares`). Versions replayed
+on the same units share each resample's indices, so the difference between two versions is
+resampled in pairs.
 """
 
 from __future__ import annotations
@@ -139,24 +140,51 @@ class Continuations:
     tokens: list[list[int]]
     finish: list[str]
 
-    def take(self, idx: Indices) -> Continuations:
-        return Continuations([self.tokens[i] for i in idx], [self.finish[i] for i in idx])
+
+def distinct_shares(continuations: Sequence[Sequence[int]], n: int) -> tuple[F64, F64]:
+    """Per continuation: its share of the unique n-grams (each occurrence of an n-gram weighs
+    1 / its count over all continuations) and its n-gram count. Their sums' ratio is exactly
+    ``distinct(continuations, n)``; over a resample it is the ratio estimator a bootstrap
+    needs, in which a continuation drawn twice does not count as repeating itself (the plain
+    unique count of a resample would, and would drag every replicate below the estimate)."""
+    grams = [ngrams(t, n) for t in continuations]
+    counts: dict[tuple[int, ...], int] = {}
+    for g in grams:
+        for gram in g:
+            counts[gram] = counts.get(gram, 0) + 1
+    shares = np.array([sum(1.0 / counts[gram] for gram in g) for g in grams])
+    totals = np.array([float(len(g)) for g in grams])
+    return shares, totals
+
+
+def continuation_statistic(c: Continuations) -> Callable[[Indices], dict[str, float]]:
+    """The continuation statistics of the module docstring on any resample of ``c``'s
+    continuations (indices into them); on all of them, the statistics of ``c``."""
+    parts = {n: distinct_shares(c.tokens, n) for n in DISTINCT_N}
+
+    def statistic(idx: Indices) -> dict[str, float]:
+        tokens = [c.tokens[i] for i in idx]
+        finish = [c.finish[i] for i in idx]
+        out: dict[str, float] = {}
+        for n in REPETITION_N:
+            values = [r for t in tokens if (r := repetition(t, n)) is not None]
+            out[f"repetition_{n}"] = float(np.mean(values)) if values else math.nan
+        for n in DISTINCT_N:
+            shares, totals = parts[n]
+            total = float(totals[idx].sum())
+            out[f"distinct_{n}"] = float(shares[idx].sum()) / total if total else math.nan
+        out["length"] = float(np.mean([len(t) for t in tokens])) if tokens else math.nan
+        for reason in FINISH_REASONS:
+            share = float(np.mean([f == reason for f in finish])) if finish else math.nan
+            out[f"finish_{reason}"] = share
+        return out
+
+    return statistic
 
 
 def continuation_statistics(c: Continuations) -> dict[str, float]:
-    """Every continuation statistic of the module docstring."""
-    out: dict[str, float] = {}
-    for n in REPETITION_N:
-        values = [r for t in c.tokens if (r := repetition(t, n)) is not None]
-        out[f"repetition_{n}"] = float(np.mean(values)) if values else math.nan
-    for n in DISTINCT_N:
-        out[f"distinct_{n}"] = distinct(c.tokens, n)
-    out["length"] = float(np.mean([len(t) for t in c.tokens])) if c.tokens else math.nan
-    for reason in FINISH_REASONS:
-        out[f"finish_{reason}"] = (
-            float(np.mean([f == reason for f in c.finish])) if c.finish else math.nan
-        )
-    return out
+    """Every continuation statistic of the module docstring, on all of ``c``."""
+    return continuation_statistic(c)(np.arange(len(c.tokens), dtype=np.intp))
 
 
 @dataclass(frozen=True)

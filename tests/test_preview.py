@@ -31,8 +31,10 @@ from service.preview_run import dump_json
 from service.preview_stats import (
     Continuations,
     Rows,
+    continuation_statistic,
     continuation_statistics,
     distinct,
+    distinct_shares,
     paired_bootstrap,
     percentile_interval,
     repetition,
@@ -156,6 +158,19 @@ def test_distinct_n_li_2016_and_repetition_by_hand() -> None:
     assert got["distinct_1"] == pytest.approx(3 / 7)
     assert got["length"] == 3.5
     assert (got["finish_budget"], got["finish_end"], got["finish_stop"]) == (0.5, 0.5, 0.0)
+
+
+def test_distinct_shares_sum_to_distinct_and_ignore_self_duplicates() -> None:
+    conts = [[1, 2, 1, 2], [3, 3, 3], [2, 1, 5]]
+    for n in (1, 2, 3):
+        shares, totals = distinct_shares(conts, n)
+        assert shares.sum() / totals.sum() == pytest.approx(distinct(conts, n))
+    # Drawing every continuation twice leaves the resampled ratio where it was; the plain
+    # unique count would halve it.
+    statistic = continuation_statistic(Continuations(conts, ["budget"] * 3))
+    twice = np.array([0, 0, 1, 1, 2, 2], np.intp)
+    assert statistic(twice)["distinct_2"] == pytest.approx(distinct(conts, 2))
+    assert distinct([conts[i] for i in twice], 2) == pytest.approx(distinct(conts, 2) / 2)
 
 
 # --- the bootstrap ----------------------------------------------------------------------------

@@ -15,7 +15,7 @@ from __future__ import annotations
 import dataclasses
 import hashlib
 import math
-from collections.abc import Callable, Iterator, Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from typing import Any, Literal
 
@@ -685,8 +685,3 @@ def _sweep_prompts(
         reps = [r for t in g.continuations.tokens if (r := repetition(t, 2)) is not None]
         out.distinct["repetition_2"].append(float(np.mean(reps)) if reps else math.nan)
     return out
-
-
-def iter_statistics(report: PreviewReport) -> Iterator[str]:
-    """The statistic names of a report, in table order."""
-    yield from report.statistics[0]

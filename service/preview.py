@@ -299,7 +299,12 @@ def _entropy_cdf(
     versions: Sequence[str], rows: Sequence[Rows]
 ) -> tuple[list[float], dict[str, list[float]]]:
     """Share of rows with entropy <= x on a common grid: the model's, then each version's."""
-    top = max([float(r.entropy_model.max(initial=0.0)) for r in rows] + [1e-6])
+    # A temperature above 1 can leave a version flatter than the raw model: cover both.
+    top = max(
+        [float(r.entropy_model.max(initial=0.0)) for r in rows]
+        + [float(r.entropy_policy.max(initial=0.0)) for r in rows]
+        + [1e-6]
+    )
     grid = np.linspace(0.0, top, _ENTROPY_POINTS)
     curves = {"model": _cdf(rows[0].entropy_model, grid)}
     for name, r in zip(versions, rows, strict=True):

@@ -159,10 +159,10 @@ def _legend(names: Sequence[str], colours: Sequence[str]) -> list[str]:
     for i, (name, c) in enumerate(zip(names, colours, strict=True)):
         y = TOP + 4 + i * 14
         out.append(
-            f'<rect x="{WIDTH - RIGHT - 154}" y="{y - 2}" width="154" height="14" '
+            f'<rect x="{WIDTH - RIGHT - 194}" y="{y - 2}" width="194" height="14" '
             'fill="#ffffff" fill-opacity="0.8"/>'
-            f'<rect x="{WIDTH - RIGHT - 150}" y="{y}" width="10" height="10" fill="{c}"/>'
-            f'<text x="{WIDTH - RIGHT - 136}" y="{y + 9}" font-size="10">{escape(name)}</text>'
+            f'<rect x="{WIDTH - RIGHT - 190}" y="{y}" width="10" height="10" fill="{c}"/>'
+            f'<text x="{WIDTH - RIGHT - 176}" y="{y + 9}" font-size="10">{escape(name)}</text>'
         )
     return out
 
@@ -197,7 +197,7 @@ def _kept_plot(report: PreviewReport) -> str:
     edges = report.kept_edges
     shares = [[c / max(sum(h), 1) for c in h] for h in report.kept_histograms]
     top = max([max(s) for s in shares] + [0.01])
-    axes = _Axes(0, len(edges), 0, top)
+    axes = _Axes(0, len(edges), 0, top * 1.15)  # headroom for the legend
     body = _frame(axes, _ticks(0, top))
     n = len(report.versions)
     slot = (axes.x(1) - axes.x(0)) * 0.8 / n
@@ -257,9 +257,11 @@ def _entropy_plot(report: PreviewReport) -> str:
     colours = [MODEL_COLOUR] + [colour(i) for i in range(len(report.versions))]
     for i, (name, c) in enumerate(zip(names, colours, strict=True)):
         body.append(_polyline(axes, grid, report.entropy_cdf[name], c, dash=i == 0))
-    body += _legend(
-        ["model (raw logits)", *(f"{v} (after policy)" for v in report.versions)], colours
-    )
+    raw = "model (raw logits)"
+    if report.mode == "prompts":  # each version continues differently: the baseline's steps
+        raw = f"model (raw, {report.versions[0]} steps)"
+    legend = [raw, *(f"{v} (after policy)" for v in report.versions)]
+    body += _legend(legend, colours)
     svg = _svg(
         "plot-entropy",
         "Entropy per row, cumulative",

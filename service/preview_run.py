@@ -22,10 +22,10 @@ from service.preview import (
     preview_prompts,
     read_prompts,
 )
+from service.preview_html import render
+from service.preview_table import table
 from service.progress import Progress
 from service.registry import load_registry
-from service.report_html import render
-from service.report_text import table
 from service.settings import Settings
 from service.shards import SUFFIX, Shard, ShardError, read_shard, shard_files
 

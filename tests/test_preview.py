@@ -27,6 +27,7 @@ from service.preview import (
     replay_shard,
     request_runs,
 )
+from service.preview_html import render
 from service.preview_run import dump_json
 from service.preview_stats import (
     Continuations,
@@ -43,7 +44,6 @@ from service.preview_stats import (
 from service.progress import Progress, bar_line
 from service.prompting import PromptRun
 from service.registry import load_registry
-from service.report_html import render
 from service.shards import Shard, read_shard, write_shard
 
 ROOT = Path(__file__).resolve().parents[1]

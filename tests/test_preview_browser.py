@@ -27,8 +27,8 @@ from capture_rows import write_capture
 from websockets.sync.client import ClientConnection, connect
 
 from service.preview import parse_sweep, preview_capture
+from service.preview_html import MODEL_COLOUR, PALETTE, render
 from service.registry import load_registry
-from service.report_html import MODEL_COLOUR, PALETTE, render
 from service.shards import read_shard
 
 ROOT = Path(__file__).resolve().parents[1]

@@ -7,6 +7,8 @@ keepset policy diff NAME@A NAME@B [--policies DIR]
 keepset policy schema [DIR]                       rewrite DIR/policy.schema.json
 keepset keys add CLIENT [--keys FILE] [--admin] [--rotate [--overlap-hours H]] [--expires-days D]
 keepset experiment report [--url URL] [--key KEY] [--client NAME] [--json]
+keepset policy preview NAME@V [NAME@V ...] (--capture PATH ... | --prompts FILE) [--seed N]
+        [--json FILE|-] [--html FILE] [--sweep FIELD=START:STOP:STEP] [--budget N] [--rows N]
 """
 
 from __future__ import annotations
@@ -76,6 +78,7 @@ def _parser() -> argparse.ArgumentParser:
     schema = policy.add_parser("schema", help="rewrite policy.schema.json from the model")
     schema.add_argument("dir", nargs="?", type=Path, default=None)
     schema.set_defaults(run=_schema)
+    _preview_parser(policy)
 
     keys = verbs.add_parser("keys", help="manage API keys").add_subparsers()
     add = keys.add_parser("add", help="make a key, store its hash, print it once")
@@ -201,6 +204,41 @@ def _schema(args: argparse.Namespace) -> int:
     path.write_text(policy_schema_text(), encoding="utf-8")
     print(f"wrote {path}")
     return 0
+
+
+def _preview_parser(policy: Any) -> None:
+    preview = policy.add_parser(
+        "preview",
+        help="replay policy versions over captured rows or prompts and compare them",
+        description="Replay policy versions over a capture (--capture) or continue a prompt "
+        "file with the bundled model (--prompts); print a table of their statistics with "
+        "bootstrap intervals, and the differences from the first version.",
+    )
+    preview.add_argument("refs", nargs="+", metavar="NAME@V", help="first one is the baseline")
+    source = preview.add_mutually_exclusive_group(required=True)
+    source.add_argument(
+        "--capture", type=Path, nargs="+", metavar="PATH", help="shard files or folders"
+    )
+    source.add_argument("--prompts", type=Path, metavar="FILE", help="one prompt per line")
+    preview.add_argument("--policies", type=Path, default=None)
+    preview.add_argument("--seed", type=int, default=0, help="bootstrap and prompt seeds")
+    preview.add_argument(
+        "--json", default=None, metavar="FILE", help="write JSON here (- for stdout)"
+    )
+    preview.add_argument("--html", type=Path, default=None, metavar="FILE")
+    preview.add_argument("--sweep", default=None, metavar="FIELD=START:STOP:STEP")
+    preview.add_argument("--budget", type=int, default=None, help="tokens per prompt")
+    preview.add_argument("--rows", type=int, default=None, metavar="LIMIT")
+    preview.add_argument("--resamples", type=int, default=1000)
+    preview.add_argument("--confidence", type=float, default=0.95)
+    preview.add_argument("--progress", action="store_true", help="progress bar even off a TTY")
+    preview.set_defaults(run=_preview)
+
+
+def _preview(args: argparse.Namespace) -> int:
+    from service import preview_run
+
+    return preview_run.run(args, _registry_dir(args.policies))
 
 
 def _keys_add(args: argparse.Namespace) -> int:

@@ -4,7 +4,7 @@ VENV := .venv
 BIN := $(VENV)/bin
 STAMP := $(VENV)/.installed
 
-.PHONY: run demo test lint prometheus bench faults clean
+.PHONY: run demo test lint prometheus browser bench faults clean
 
 $(STAMP): pyproject.toml
 	$(PY) -m venv $(VENV)
@@ -28,7 +28,11 @@ lint: $(STAMP)
 prometheus:
 	bash deploy/prometheus/install-prometheus.sh
 
-test: lint prometheus
+# The preview report's browser test opens it in Debian's Chromium (headless).
+browser:
+	bash deploy/install-chromium.sh
+
+test: lint prometheus browser
 	$(BIN)/python -m pytest -q
 
 bench: $(STAMP)

@@ -18,18 +18,22 @@ import os
 import re
 import shutil
 import subprocess
+import sys
+import tempfile
 import tomllib
 from pathlib import Path, PurePosixPath
 from types import ModuleType
 from typing import Any
 
 import kubernetes_validate
+import numpy as np
 import pytest
 import yaml
-from conftest import DEMO_KEYS, ROOT
+from conftest import DEMO_KEYS, ROOT, start_server, stop_server
 
 from service.app import create_app
 from service.cli import main as cli
+from service.client import Client
 from service.registry import load_registry
 from service.settings import Settings
 
@@ -442,3 +446,76 @@ def test_readme_points_at_the_deploy_files() -> None:
         assert str(path.relative_to(ROOT)) in readme, path
     for named in re.findall(r"deploy/[A-Za-z0-9_./-]+[A-Za-z0-9_]", readme):
         assert (ROOT / named).exists(), named
+
+
+# --- the sidecar's settings, served -------------------------------------------------------------
+
+
+def files_of_volume(form: str, name: str) -> dict[str, bytes]:
+    """What the kubelet would put in a ConfigMap or Secret volume of the rendered pod."""
+    source = volume(form, name)
+    if "configMap" in source:
+        data = one(form, "ConfigMap", source["configMap"]["name"])["data"]
+        items = {i["key"]: i["path"] for i in source["configMap"].get("items", [])}
+    else:
+        data = one(form, "Secret", source["secret"]["secretName"])["stringData"]
+        items = {}
+    return {items.get(key, key): text.encode() for key, text in data.items()}
+
+
+def test_the_sidecars_settings_serve_through_its_socket_and_probes() -> None:
+    """keepset started with the sidecar's environment, every path moved into a folder standing in
+    for its volume: ready on the socket, its probe commands pass (and fail once it is gone), and
+    the inference container's settings and key make a pick over socket and shared memory."""
+    sidecar, caller = keepset_container("sidecar"), inference()
+    pod_root = Path(tempfile.mkdtemp(prefix="ks-pod-", dir="/tmp"))  # a socket path is short
+    try:
+        for name in {m["name"] for m in sidecar["volumeMounts"]}:
+            folder = pod_root / name
+            folder.mkdir()
+            if "emptyDir" not in volume("sidecar", name):
+                mount_like_the_kubelet(folder, files_of_volume("sidecar", name))
+
+        def moved(container: dict[str, Any], value: str) -> str:
+            if not value.startswith("/"):
+                return value
+            name, inside = volume_at(container, value)
+            return str(pod_root / name / inside)
+
+        env = {k: moved(sidecar, v) for k, v in env_of(sidecar).items()}
+        port = env.pop("KEEPSET_PORT")
+        server = start_server(
+            Path(env.pop("KEEPSET_POLICIES")),
+            workers=int(env.pop("KEEPSET_WORKERS")),
+            uds=Path(env.pop("KEEPSET_UDS")),
+            **env,
+        )
+        live_port = server.base_url.rsplit(":", 1)[1]
+
+        def probe(name: str) -> int:
+            command = [
+                sys.executable if part == "python" else part.replace(f":{port}/", f":{live_port}/")
+                for part in sidecar[name]["exec"]["command"]
+            ]
+            return subprocess.run(command, capture_output=True, timeout=30).returncode
+
+        try:
+            for name in ("startupProbe", "readinessProbe", "livenessProbe"):
+                assert probe(name) == 0, name
+            settings = {e["name"]: e.get("value") for e in caller["env"]}
+            (ref,) = [e["valueFrom"]["secretKeyRef"] for e in caller["env"] if "valueFrom" in e]
+            key = one("sidecar", "Secret", ref["name"])["stringData"][ref["key"]]
+            logits = np.random.default_rng(3).standard_normal((2, 1000)).astype(np.float32)
+            with Client(
+                "http://keepset",
+                key=key,
+                uds=moved(caller, settings["PICKER_SOCKET"]),
+                shm_dir=moved(caller, settings["PICKER_SHM_DIR"]),
+            ) as client:
+                reply = client.pick(logits, seed=7)
+            assert len(reply.tokens) == 2
+        finally:
+            stop_server(server)
+        assert probe("readinessProbe") != 0
+    finally:
+        shutil.rmtree(pod_root, ignore_errors=True)

@@ -133,7 +133,11 @@ def test_every_rendered_document_validates_against_the_kubernetes_schema(form: s
 def test_the_schema_check_refuses_a_misspelt_sidecar_field() -> None:
     # The validation above would mean nothing if the schema let any init container field pass.
     deployment = yaml.safe_load(yaml.safe_dump(one("sidecar", "Deployment")))
-    sidecar = deployment["spec"]["template"]["spec"]["initContainers"][0]
+    (sidecar,) = [
+        c
+        for c in deployment["spec"]["template"]["spec"]["initContainers"]
+        if c["name"] == "keepset"
+    ]
     sidecar["restartPolicyy"] = sidecar.pop("restartPolicy")
     with pytest.raises(kubernetes_validate.ValidationError):
         kubernetes_validate.validate(deployment, KUBERNETES_VERSION, strict=True)
@@ -234,14 +238,18 @@ def setting_names(names: list[str]) -> set[str]:
 def test_every_variable_is_a_keepset_setting_with_a_valid_value(form: str) -> None:
     spec = pod(form)
     names = [
-        e["name"] for c in spec.get("initContainers", []) + spec["containers"] for e in c["env"]
+        e["name"]
+        for c in spec.get("initContainers", []) + spec["containers"]
+        for e in c.get("env", [])
     ]
     image_env = re.findall(r"\b(KEEPSET_[A-Z_]+)=", CONTAINERFILE.read_text())
     assert setting_names(names) and image_env
     unknown = (setting_names(names) | setting_names(image_env)) - set(Settings.model_fields)
     assert not unknown, unknown
     values = {
-        k.removeprefix("KEEPSET_").lower(): v for k, v in env_of(keepset_container(form)).items()
+        k.removeprefix("KEEPSET_").lower(): v
+        for k, v in env_of(keepset_container(form)).items()
+        if k.startswith("KEEPSET_")
     }
     Settings.model_validate(values)
 
@@ -311,6 +319,34 @@ def test_every_container_is_locked_down(form: str) -> None:
         assert all("hostPort" not in p for p in container.get("ports", []))
         assert "cpu" in container["resources"]["requests"]
         assert "memory" in container["resources"]["limits"]
+
+
+@pytest.mark.parametrize("form", FORMS)
+def test_keepset_writes_only_to_volumes(form: str) -> None:
+    """The root filesystem is read-only: the metrics folder (under /tmp), the socket's folder and
+    numba's cache must be on writable volumes, and the cache starts as a copy of the image's."""
+    spec = pod(form)
+    container = keepset_container(form)
+    writable = [str(p) for p in ("/tmp", setting(container, "uds")) if p is not None]
+    for path in [*writable, env_of(container)["NUMBA_CACHE_DIR"]]:
+        name, _ = volume_at(container, str(path))
+        assert "emptyDir" in volume(form, name), path
+    image_cache = re.search(r"NUMBA_CACHE_DIR=(\S+)", CONTAINERFILE.read_text())
+    assert image_cache is not None
+    names = [c["name"] for c in spec["initContainers"]]
+    copy = spec["initContainers"][names.index("numba-cache")]
+    # Init containers run in order: the copy is done before a sidecar keepset starts.
+    assert "keepset" not in names or names.index("numba-cache") < names.index("keepset")
+    assert copy["image"] == container["image"]
+    assert copy["command"] == [
+        "cp",
+        "-R",
+        f"{image_cache[1]}/.",
+        copy["volumeMounts"][0]["mountPath"],
+    ]
+    assert volume_at(copy, copy["command"][-1]) == volume_at(
+        container, env_of(container)["NUMBA_CACHE_DIR"]
+    )
 
 
 # --- the sidecar form --------------------------------------------------------------------------
@@ -482,7 +518,8 @@ def test_the_sidecars_settings_serve_through_its_socket_and_probes() -> None:
             name, inside = volume_at(container, value)
             return str(pod_root / name / inside)
 
-        env = {k: moved(sidecar, v) for k, v in env_of(sidecar).items()}
+        # Not the copied kernel cache: the test's server uses the checkout's, already compiled.
+        env = {k: moved(sidecar, v) for k, v in env_of(sidecar).items() if k != "NUMBA_CACHE_DIR"}
         port = env.pop("KEEPSET_PORT")
         server = start_server(
             Path(env.pop("KEEPSET_POLICIES")),

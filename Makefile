@@ -4,7 +4,7 @@ VENV := .venv
 BIN := $(VENV)/bin
 STAMP := $(VENV)/.installed
 
-.PHONY: run demo test lint prometheus browser bench faults clean
+.PHONY: run demo test lint prometheus browser kubectl bench faults clean
 
 $(STAMP): pyproject.toml
 	$(PY) -m venv $(VENV)
@@ -19,9 +19,10 @@ run: $(STAMP)
 	$(BIN)/keepset serve
 
 lint: $(STAMP)
-	$(BIN)/ruff check service tests loadtest
-	$(BIN)/ruff format --check service tests loadtest
+	$(BIN)/ruff check service tests loadtest deploy/kubernetes
+	$(BIN)/ruff format --check service tests loadtest deploy/kubernetes
 	$(BIN)/mypy
+	$(BIN)/mypy deploy/kubernetes/sync_registry.py
 
 # The alert-rule tests need promtool and the live monitoring test a real Prometheus: Debian's
 # prometheus package (the script does nothing when both are already installed).
@@ -32,7 +33,12 @@ prometheus:
 browser:
 	bash deploy/install-chromium.sh
 
-test: lint prometheus browser
+# The deploy tests render the kustomize overlays with kubectl (Debian's kubernetes-client when
+# no kubectl is installed).
+kubectl:
+	bash deploy/kubernetes/install-kubectl.sh
+
+test: lint prometheus browser kubectl
 	$(BIN)/python -m pytest -q
 
 bench: $(STAMP)

@@ -87,7 +87,11 @@ def start_keepset(workers: int, **settings: str) -> tuple[subprocess.Popen[bytes
         stdout=subprocess.DEVNULL,
         stderr=subprocess.DEVNULL,
     )
-    wait_ready(port, "/readyz", proc)
+    try:
+        wait_ready(port, "/readyz", proc)
+    except BaseException:  # never leave a server behind
+        stop(proc)
+        raise
     return proc, port
 
 

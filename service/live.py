@@ -25,7 +25,7 @@ from service.model import Model, ModelError
 from service.outcomes import OutcomeStore
 from service.registry import RegistrySnapshot, reload_registry
 from service.request_ids import RequestIds, new_secret
-from service.sampling import Kernel, kernel_available, warm_up
+from service.sampling import KERNEL_PROBLEM, Kernel, kernel_available, warm_up
 from service.settings import Settings
 from service.watch import CollapseWatch
 
@@ -132,7 +132,7 @@ async def warm_kernel(live: Live) -> None:
     try:
         if live.settings.sampling_kernel == "compiled":
             if not kernel_available():
-                log.warning("numba is not installed: sampling takes the numpy path")
+                log.warning("%s: sampling takes the numpy path", KERNEL_PROBLEM)
             else:
                 await run_in_threadpool(warm_up)
                 live.kernel = "compiled"

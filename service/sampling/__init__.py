@@ -21,6 +21,7 @@ from service.sampling.chain import (
     parse_chain,
 )
 from service.sampling.core import (
+    KERNEL_PROBLEM,
     KERNELS,
     InputError,
     Kernel,
@@ -35,6 +36,7 @@ from service.sampling.core import (
 
 __all__ = [
     "KERNELS",
+    "KERNEL_PROBLEM",
     "METHODS",
     "SCALAR_METHODS",
     "TRUNCATION_METHODS",

@@ -38,10 +38,16 @@ if TYPE_CHECKING:
     from service.sampling.compiled import Decided, Plan
 
 compiled: ModuleType | None
+# Why the compiled kernel is missing, when it is; the numpy path then decides every row.
+KERNEL_PROBLEM: str | None = None
 try:
     from service.sampling import compiled
-except ImportError:  # numba is not installed: the numpy path decides every row
-    compiled = None
+except ImportError:
+    compiled, KERNEL_PROBLEM = None, "numba is not installed"
+except RuntimeError as exc:
+    # numba refuses ``cache=True`` when it finds no folder it may write (a read-only filesystem
+    # without a writable NUMBA_CACHE_DIR): serve on the numpy path rather than not at all.
+    compiled, KERNEL_PROBLEM = None, f"numba cannot load the kernel: {exc}"
 
 # Fresh seeds stay below 2**53 so that any JSON client can echo them back exactly.
 _FRESH_SEED_BITS = 53
@@ -59,7 +65,8 @@ KERNELS: tuple[Kernel, ...] = ("compiled", "numpy")
 
 
 def kernel_available() -> bool:
-    """Whether the compiled kernel can run here (numba imports)."""
+    """Whether the compiled kernel can run here (numba imports; ``KERNEL_PROBLEM`` says why
+    not)."""
     return compiled is not None
 
 

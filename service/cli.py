@@ -236,9 +236,9 @@ def _preview_parser(policy: Any) -> None:
 
 
 def _preview(args: argparse.Namespace) -> int:
-    from service import preview_run
+    from service.preview import command as preview_command
 
-    return preview_run.run(args, _registry_dir(args.policies))
+    return preview_command.run(args, _registry_dir(args.policies))
 
 
 def _keys_add(args: argparse.Namespace) -> int:

@@ -19,7 +19,7 @@ import pytest
 from conftest import DEMO_KEYS, start_server, stop_server
 
 from service.client import Client, PickReply
-from service.preview import preview_capture
+from service.preview.replay import preview_capture
 from service.registry import load_registry
 from service.shards import read_shard, shard_files
 

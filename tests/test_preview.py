@@ -16,7 +16,10 @@ from scipy import stats
 
 from service.cli import main
 from service.model import BUNDLED, Model
-from service.preview import (
+from service.preview.command import dump_json
+from service.preview.page import render
+from service.preview.progress import Progress, bar_line
+from service.preview.replay import (
     PreviewError,
     generate,
     parse_sweep,
@@ -27,9 +30,7 @@ from service.preview import (
     replay_shard,
     request_runs,
 )
-from service.preview_html import render
-from service.preview_run import dump_json
-from service.preview_stats import (
+from service.preview.stats import (
     Continuations,
     Rows,
     continuation_statistic,
@@ -41,7 +42,6 @@ from service.preview_stats import (
     repetition,
     row_statistics,
 )
-from service.progress import Progress, bar_line
 from service.prompting import PromptRun
 from service.registry import load_registry
 from service.shards import Shard, read_shard, write_shard
@@ -460,7 +460,7 @@ def model() -> Model:
 
 def test_prompt_mode_on_the_bundled_model(model: Model) -> None:
     snapshot = load_registry(ROOT / "policies")
-    prompts = read_prompts((ROOT / "service" / "preview_prompts.txt").read_text())[:3]
+    prompts = read_prompts((ROOT / "service" / "preview" / "prompts.txt").read_text())[:3]
     refs = ["prompt-book@3", "prompt-book@5"]
 
     def run() -> str:

@@ -26,8 +26,8 @@ import pytest
 from capture_rows import write_capture
 from websockets.sync.client import ClientConnection, connect
 
-from service.preview import parse_sweep, preview_capture
-from service.preview_html import MODEL_COLOUR, PALETTE, render
+from service.preview.page import MODEL_COLOUR, PALETTE, render
+from service.preview.replay import parse_sweep, preview_capture
 from service.registry import load_registry
 from service.shards import read_shard
 

@@ -5,7 +5,7 @@ from __future__ import annotations
 
 from typing import Any
 
-from service.preview import PreviewReport
+from service.preview.replay import PreviewReport
 
 
 def number(x: float | None) -> str:

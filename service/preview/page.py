@@ -12,8 +12,8 @@ import math
 from collections.abc import Sequence
 from html import escape
 
-from service.preview import PreviewReport
-from service.preview_table import cell, number
+from service.preview.replay import PreviewReport
+from service.preview.table import cell, number
 
 PALETTE = ("#1f6fb2", "#d9622b", "#2a9d5c", "#8e44ad", "#b8860b", "#c0392b", "#17808a")
 MODEL_COLOUR = "#e0559a"

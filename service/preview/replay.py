@@ -7,7 +7,7 @@ reproduces the served token. Rows of one request share a seed and have consecuti
 runs go to ``pick`` as one batch. Prompt mode continues each prompt once per version with
 ``PromptRun``, with a seed derived from the preview's seed and the prompt's index, so every
 version sees the same prompts under the same seeds. The statistics and their bootstrap
-intervals are :mod:`service.preview_stats`; the terminal table and HTML report render a report.
+intervals are :mod:`service.preview.stats`; the terminal table and HTML report render a report.
 """
 
 from __future__ import annotations
@@ -25,7 +25,8 @@ import numpy.typing as npt
 from service.metrics import fibonacci_buckets
 from service.model import Model, PromptError
 from service.policy import Policy, first_stage, format_ref, parse_ref
-from service.preview_stats import (
+from service.preview.progress import Progress
+from service.preview.stats import (
     Bootstrapped,
     Continuations,
     Indices,
@@ -39,7 +40,6 @@ from service.preview_stats import (
     row_statistics,
     unit_rows,
 )
-from service.progress import Progress
 from service.prompting import PromptRun
 from service.registry import RegistrySnapshot
 from service.sampling import Chain, ChainError, InputError, Kernel, final_distribution, pick

@@ -14,7 +14,9 @@ import sys
 from pathlib import Path
 
 from service.model import Model, ModelError
-from service.preview import (
+from service.preview.page import render
+from service.preview.progress import Progress
+from service.preview.replay import (
     PreviewError,
     PreviewReport,
     parse_sweep,
@@ -22,9 +24,7 @@ from service.preview import (
     preview_prompts,
     read_prompts,
 )
-from service.preview_html import render
-from service.preview_table import table
-from service.progress import Progress
+from service.preview.table import table
 from service.registry import load_registry
 from service.settings import Settings
 from service.shards import SUFFIX, Shard, ShardError, read_shard, shard_files

@@ -230,7 +230,7 @@ def case_reloads(count: int) -> dict[str, Any]:
         box = registry / "box-office" / "1.yaml"
         box_text = box.read_text()
         proc, port = start_keepset(
-            2, KEEPSET_POLICIES=str(registry), KEEPSET_RELOAD_POLL_SECONDS="0.5"
+            2, KEEPSET_POLICIES=str(registry), KEEPSET_RELOAD_POLL_SECONDS="0.1"
         )
         outcomes: dict[str, int] = {}
         last_good = ""
@@ -251,7 +251,9 @@ def case_reloads(count: int) -> dict[str, Any]:
                 status, payload = request(port, "POST", "/v1/registry/reload", ADMIN)
                 outcome = json.loads(payload).get("outcome", str(status))
                 outcomes[outcome] = outcomes.get(outcome, 0) + 1
-                time.sleep(0.05)
+                # The admin endpoint reloads the worker that answers; the other follows by its
+                # file poll. A state shorter than the poll would never reach it at all.
+                time.sleep(0.3)
             time.sleep(1.5)  # both workers' polls see the last (broken) state
 
         try:

@@ -91,7 +91,8 @@ class Shard:
 
 
 _ARRAYS = [f.name for f in fields(Shard) if f.name != "client"]
-_DTYPES = {
+# The numeric columns' types (the text columns are fixed-width unicode).
+DTYPES = {
     "logits": np.float16,
     "history": np.int32,
     "history_offsets": np.int64,
@@ -142,7 +143,7 @@ def read_shard(path: Path) -> Shard:
         if isinstance(exc, ShardError):
             raise
         raise ShardError(f"{path}: not a readable capture shard ({exc})") from None
-    for name, dtype in _DTYPES.items():
+    for name, dtype in DTYPES.items():
         columns[name] = columns[name].astype(dtype, copy=False)
     shard = Shard(client=str(meta.get("client", "")), **columns)
     _check(shard)

@@ -13,7 +13,7 @@ import numpy as np
 
 from service.registry import RegistrySnapshot
 from service.sampling import pick
-from service.shards import SOURCE_CONTINUE, SOURCE_PICK, Shard, write_shard
+from service.shards import DTYPES, SOURCE_CONTINUE, SOURCE_PICK, Shard, write_shard
 
 
 @dataclass(frozen=True)
@@ -107,21 +107,8 @@ def served_shard(
             columns["time"].append(1_800_000_000.0 + i)
         histories += req.histories
     lengths = [len(h) for h in histories]
-    dtypes = {
-        "seed": np.uint64,
-        "stream": np.int64,
-        "source": np.uint8,
-        "version": np.int32,
-        "token": np.int32,
-        "kept": np.int32,
-        "entropy": np.float64,
-        "kept_mass": np.float64,
-        "prob": np.float64,
-        "logprob": np.float64,
-        "time": np.float64,
-    }
     arrays = {
-        k: np.array(v, dtype=dtypes[k]) if k in dtypes else np.array(v, dtype=str)
+        k: np.array(v, dtype=DTYPES[k]) if k in DTYPES else np.array(v, dtype=str)
         for k, v in columns.items()
     }
     return Shard(

@@ -74,14 +74,19 @@ def settled_rows(server: Server, before: float, deadline: float) -> float:
     return counted
 
 
-@pytest.fixture
-def long_take_server(registry: Path) -> Iterator[Server]:
+def route_usher_desk_to_long_take(registry: Path) -> None:
+    """Publish long-take@1 in ``registry`` and route usher-desk to it."""
     (registry / "long-take").mkdir()
     (registry / "long-take" / "1.yaml").write_text(LONG_TAKE)
     publish = [sys.executable, "-m", "service.cli", "policy", "publish", str(registry)]
     subprocess.run([*publish, "long-take"], check=True, capture_output=True)
     routes = (registry / "routes.yaml").read_text()
     (registry / "routes.yaml").write_text(routes.replace("box-office@1", "long-take@1"))
+
+
+@pytest.fixture
+def long_take_server(registry: Path) -> Iterator[Server]:
+    route_usher_desk_to_long_take(registry)
     running = start_server(registry, workers=2)
     yield running
     stop_server(running)

@@ -6,8 +6,6 @@ the shutdown time."""
 from __future__ import annotations
 
 import signal
-import subprocess
-import sys
 import threading
 import time
 from collections.abc import Iterator
@@ -17,7 +15,7 @@ from typing import Any
 import httpx
 import pytest
 from conftest import Server, assert_problem, auth, start_server, stop_server
-from test_continue_server import LONG_TAKE, sse_events
+from test_continue_server import route_usher_desk_to_long_take, sse_events
 
 DRAIN_SECONDS = 2.0
 SHUTDOWN_SECONDS = 20.0
@@ -25,12 +23,7 @@ SHUTDOWN_SECONDS = 20.0
 
 @pytest.fixture
 def draining_server(registry: Path) -> Iterator[Server]:
-    (registry / "long-take").mkdir()
-    (registry / "long-take" / "1.yaml").write_text(LONG_TAKE)
-    publish = [sys.executable, "-m", "service.cli", "policy", "publish", str(registry)]
-    subprocess.run([*publish, "long-take"], check=True, capture_output=True)
-    routes = (registry / "routes.yaml").read_text()
-    (registry / "routes.yaml").write_text(routes.replace("box-office@1", "long-take@1"))
+    route_usher_desk_to_long_take(registry)
     running = start_server(
         registry,
         workers=2,

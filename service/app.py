@@ -1,6 +1,6 @@
 """The HTTP layer: the FastAPI app and its handlers, thin over the modules that do the work.
 
-A request goes through the guard (``guard``), the key (``keys``), its body (``bodies``), the
+A request goes through admission (``admission``), the key (``keys``), its body (``bodies``), the
 policy that serves it (``serving``: route, arm, adjusted chain), the sampler or the prompt path
 (``sampling``, ``prompting``), then metrics and the answer. What the running app holds, and how
 reloads and the model loading change it, is in ``live``.
@@ -26,6 +26,7 @@ from starlette.concurrency import run_in_threadpool
 from starlette.responses import Response
 
 from service import drain, metrics, problems
+from service.admission import Admission
 from service.bodies import (
     PickInput,
     check_limits,
@@ -36,7 +37,6 @@ from service.bodies import (
 )
 from service.capture import Capture, Origin, warn_if_off
 from service.fallback_serving import after_pick, after_run, guard_request
-from service.guard import Guard
 from service.keys import Identity, load_keyring, utc_now
 from service.live import (
     Live,
@@ -169,7 +169,7 @@ def _log_to_stderr(level: str) -> None:
 
 def _install_middleware(app: FastAPI, live: Live) -> None:
     # A plain ASGI middleware: the decorator form streams every body through extra tasks.
-    app.add_middleware(Guard, live=live)
+    app.add_middleware(Admission, live=live)
 
 
 def _identity(request: Request, live: Live) -> Identity:

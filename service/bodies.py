@@ -17,7 +17,7 @@ import orjson
 from fastapi import Request
 from pydantic import BaseModel, ConfigDict, Field, StrictInt, ValidationError
 
-from service.guard import read_body
+from service.admission import read_body
 from service.live import Live
 from service.npy import NpyError, read_npy
 from service.outcomes import OutcomeBody

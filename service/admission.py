@@ -1,4 +1,4 @@
-"""The guard in front of every handler: a draining worker (503 with Retry-After), overload
+"""Admission, in front of every handler: a draining worker (503 with Retry-After), overload
 (429 with Retry-After), a declared body over the limit (413), reading bodies within the limit,
 and the request-duration metric with bounded endpoint labels. A plain ASGI middleware: the
 decorator form streams every body through extra tasks.
@@ -38,7 +38,7 @@ def endpoint_label(path: str) -> str:
     return "other"
 
 
-class Guard:
+class Admission:
     """Draining (503), overload (429), declared body size (413) and request timing, before any
     handler runs."""
 

@@ -423,6 +423,17 @@ def test_the_service_reaches_keepsets_port() -> None:
     assert f"EXPOSE {KEEPSET_PORT}" in CONTAINERFILE.read_text()
 
 
+def test_replicas_share_the_request_id_secret() -> None:
+    # Request ids carry a MAC under KEEPSET_REQUEST_SECRET; replicas with different secrets
+    # would refuse each other's ids when an outcome comes back through the Service.
+    (entry,) = [
+        e for e in keepset_container("shared")["env"] if e["name"] == "KEEPSET_REQUEST_SECRET"
+    ]
+    assert "request_secret" in Settings.model_fields
+    ref = entry["valueFrom"]["secretKeyRef"]
+    assert ref["name"] and ref["key"] and ref["optional"] is True
+
+
 def test_the_autoscaler_disruption_budget_and_spread_hold_keepsets_pods() -> None:
     deployment = one("shared", "Deployment")
     hpa = one("shared", "HorizontalPodAutoscaler")

@@ -101,6 +101,11 @@ class RegistrySnapshot:
                     ],
                     "shadow": [format_ref(*ref) for ref in route.shadow],
                     **({"guard": route.guard.describe()} if route.guard is not None else {}),
+                    **(
+                        {"capture": {"rate": route.capture.rate, "max_mb": route.capture.max_mb}}
+                        if route.capture is not None
+                        else {}
+                    ),
                 }
                 for client, route in sorted(self.routes.items())
             }

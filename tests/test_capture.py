@@ -21,7 +21,7 @@ import numpy as np
 import numpy.typing as npt
 import pytest
 import yaml
-from conftest import Server, auth, start_server, stop_server
+from conftest import Server, auth, in_process, start_server, stop_server
 from prometheus_client import REGISTRY
 from scipy.stats import binom
 
@@ -602,3 +602,17 @@ def test_the_capture_folder_setting(registry: Path, tmp_path: Path) -> None:
     for path in (not_a_folder, tmp_path / "missing"):
         with pytest.raises(ValueError, match="KEEPSET_CAPTURE_DIR"):
             create_app(Settings(policies=registry, capture_dir=path))
+
+
+def test_routes_show_the_capture_rule(registry: Path) -> None:
+    routes = (registry / "routes.yaml").read_text()
+    (registry / "routes.yaml").write_text(
+        routes.replace(
+            "arms: [{policy: box-office@1, weight: 100}]",
+            "arms: [{policy: box-office@1, weight: 100}]\n    capture: {rate: 0.25, max_mb: 3}",
+        )
+    )
+    with in_process(registry) as client:
+        described = client.get("/v1/routes", headers=auth("stage-manager")).json()
+    assert described["clients"]["usher-desk"]["capture"] == {"rate": 0.25, "max_mb": 3.0}
+    assert "capture" not in described["clients"]["surtitle-booth"]

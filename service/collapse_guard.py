@@ -109,6 +109,21 @@ class CollapseGuard:
             return None  # the common case, without computing a median
         window = watch.median(*version)
         median, rows = window if window is not None else (None, 0)
+
+        def change(*, engaged: bool, reason: str, held_seconds: float) -> GuardChange:
+            return GuardChange(
+                client=client,
+                version=version,
+                fallback=spec.fallback,
+                engaged=engaged,
+                reason=reason,
+                median=median,
+                floor=floor,
+                recover_at=floor + spec.recover_margin,
+                rows=rows,
+                held_seconds=held_seconds,
+            )
+
         with self._lock:
             now = self.clock()
             state = self._engaged.get(key)
@@ -116,18 +131,7 @@ class CollapseGuard:
                 if not collapsed:
                     return None
                 self._engaged[key] = _Engagement(now, spec.fallback)
-                return GuardChange(
-                    client=client,
-                    version=version,
-                    fallback=spec.fallback,
-                    engaged=True,
-                    reason="collapsed",
-                    median=median,
-                    floor=floor,
-                    recover_at=floor + spec.recover_margin,
-                    rows=rows,
-                    held_seconds=0.0,
-                )
+                return change(engaged=True, reason="collapsed", held_seconds=0.0)
             if not may_release(
                 collapsed=collapsed,
                 median=median,
@@ -139,18 +143,7 @@ class CollapseGuard:
             ):
                 return None
             del self._engaged[key]
-            return GuardChange(
-                client=client,
-                version=version,
-                fallback=spec.fallback,
-                engaged=False,
-                reason="recovered",
-                median=median,
-                floor=floor,
-                recover_at=floor + spec.recover_margin,
-                rows=rows,
-                held_seconds=now - state.since,
-            )
+            return change(engaged=False, reason="recovered", held_seconds=now - state.since)
 
     def first_fallback_collapse(self, client: str, version: Ref) -> bool:
         """True the first time in an engagement that its fallback is found collapsed too."""

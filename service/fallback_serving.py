@@ -39,7 +39,7 @@ from service.prompting import PromptRun
 from service.registry import RegistrySnapshot
 from service.routing import Route
 from service.sampling import Chain, InputError, pick
-from service.serving import Served, watch_kept
+from service.serving import Served, observe_shadow, watch_kept
 
 if TYPE_CHECKING:
     from service.live import Live
@@ -172,16 +172,7 @@ def _number(value: float | None) -> str:
 
 
 def _observe_guarded(live: Live, policy: Policy, kept: list[int]) -> None:
-    metrics.observe_rows(
-        client="",
-        policy=policy.name,
-        version=policy.version,
-        arm="",
-        role="shadow",
-        kept=kept,
-        entropy=[],
-        fallback=[],
-    )
+    observe_shadow(policy.name, policy.version, kept)
     watch_kept(live, policy, kept)
 
 

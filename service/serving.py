@@ -157,16 +157,22 @@ def run_shadows(
             out = pick(snapshot.chain(ref), rows, seed, history, kernel=kernel)
         except InputError:
             continue  # the shadow cannot take these logits; the served answer stands
-        metrics.observe_rows(
-            client="",
-            policy=ref[0],
-            version=ref[1],
-            arm="",
-            role="shadow",
-            kept=out.kept.tolist(),
-            entropy=[],
-            fallback=[],
-        )
+        observe_shadow(ref[0], ref[1], out.kept.tolist())
+
+
+def observe_shadow(policy: str, version: int, kept: list[int]) -> None:
+    """Kept sizes of a version evaluated on rows it did not serve (a shadow, or a guarded
+    version while its fallback serves): the kept-set histogram with role shadow, nothing else."""
+    metrics.observe_rows(
+        client="",
+        policy=policy,
+        version=version,
+        arm="",
+        role="shadow",
+        kept=kept,
+        entropy=[],
+        fallback=[],
+    )
 
 
 def routes_with_ratio(snapshot: RegistrySnapshot) -> dict[str, Any]:

@@ -361,18 +361,8 @@ def preview_capture(
         Rows(r.rows.kept, shared, r.rows.entropy_policy, r.rows.kept_mass, r.rows.fallback)
         for r in replayed
     ]
-    rng = np.random.default_rng(seed)
-    bar.start("bootstrap", resamples)
-    boot = paired_bootstrap(
-        [_row_statistic(r) for r in rows],
-        total,
-        resamples=resamples,
-        confidence=confidence,
-        rng=rng,
-        progress=bar.update,
-    )
-    bar.finish()
-    own, diff = _intervals(boot)
+    statistics = [_row_statistic(r) for r in rows]
+    own, diff = _bootstrapped(statistics, total, seed, resamples, confidence, bar)
     edges = _edges(rows)
     grid, cdf = _entropy_cdf([p.ref for p in policies], rows)
     served = [_served(p, shards, counts, r.tokens) for p, r in zip(policies, replayed, strict=True)]
@@ -398,6 +388,29 @@ def preview_capture(
         served=served,
         sweep=swept,
     )
+
+
+def _bootstrapped(
+    statistics: list[Callable[[Indices], dict[str, float]]],
+    units: int,
+    seed: int,
+    resamples: int,
+    confidence: float,
+    bar: Progress,
+) -> tuple[list[dict[str, Any]], list[dict[str, Any]]]:
+    """Each version's intervals and its paired differences from the first, resampling
+    ``units`` with the preview's seed."""
+    bar.start("bootstrap", resamples)
+    boot = paired_bootstrap(
+        statistics,
+        units,
+        resamples=resamples,
+        confidence=confidence,
+        rng=np.random.default_rng(seed),
+        progress=bar.update,
+    )
+    bar.finish()
+    return _intervals(boot)
 
 
 def _check_bootstrap(resamples: int, confidence: float) -> None:
@@ -596,18 +609,8 @@ def preview_prompts(
         generate(model, c, p, prompts, seed, budget, kernel, bar, f"continue {p.ref}")
         for c, p in zip(chains, policies, strict=True)
     ]
-    rng = np.random.default_rng(seed)
-    bar.start("bootstrap", resamples)
-    boot = paired_bootstrap(
-        [_prompt_statistic(g) for g in runs],
-        len(prompts),
-        resamples=resamples,
-        confidence=confidence,
-        rng=rng,
-        progress=bar.update,
-    )
-    bar.finish()
-    own, diff = _intervals(boot)
+    statistics = [_prompt_statistic(g) for g in runs]
+    own, diff = _bootstrapped(statistics, len(prompts), seed, resamples, confidence, bar)
     rows = [g.rows for g in runs]
     edges = _edges(rows)
     grid, cdf = _entropy_cdf([p.ref for p in policies], rows)

@@ -74,7 +74,9 @@ def reference_row(
         if not alive.any():
             break
         p = softmax_alive(w)
-        by_prob = order_by(-p, alive)
+        # "Most probable" is ranked by working logit, which orders exactly as the probability:
+        # exp's rounding can give distinct logits (0 and -1e-308) one float64 probability.
+        by_prob = order_by(-w, alive)
         if method == "top_k":
             keep = by_prob[:param]
         elif method == "greedy":

@@ -117,3 +117,32 @@ def test_plans_die_with_their_chains() -> None:
     del chains, chain
     gc.collect()
     assert len(compiled._PLANS) == before
+
+
+def test_wide_vectors_follow_the_host_and_keep_an_operators_choice() -> None:
+    # The kernel asks numba for 512-bit vectors only on x86-64 CPUs with AVX-512, and never
+    # overrides NUMBA_CPU_FEATURES when the operator has set it.
+    import os
+    import subprocess
+    import sys
+
+    from llvmlite import binding
+
+    probe = "import os, service.sampling; print(os.environ.get('NUMBA_CPU_FEATURES', ''))"
+    env = {k: v for k, v in os.environ.items() if k != "NUMBA_CPU_FEATURES"}
+    chosen = subprocess.run(
+        [sys.executable, "-c", probe], env=env, capture_output=True, text=True, check=True
+    ).stdout.strip()
+    host = binding.get_host_cpu_features().flatten()
+    if "+avx512f" in host.split(","):
+        assert chosen == f"{host},-prefer-256-bit"
+    else:
+        assert chosen == ""
+    kept = subprocess.run(
+        [sys.executable, "-c", probe],
+        env={**env, "NUMBA_CPU_FEATURES": host},
+        capture_output=True,
+        text=True,
+        check=True,
+    ).stdout.strip()
+    assert kept == host

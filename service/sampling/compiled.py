@@ -25,6 +25,11 @@ from numpy.typing import NDArray
 
 from service.sampling import kernel
 from service.sampling.chain import Chain, OccurrencePenalty, RepetitionPenalty, Stage, parse_chain
+from service.sampling.vector_width import prefer_wide_vectors
+
+# Numba reads the target features when it first compiles or loads a cached kernel, which no
+# import does: here is before any of that.
+prefer_wide_vectors()
 
 F32 = NDArray[np.float32]
 F64 = NDArray[np.float64]
@@ -73,19 +78,15 @@ class Decided:
     logprob: float
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, slots=True)
 class Picked:
-    """A batch through ``kernel.pick_rows``: per row, ``status`` (``kernel.DECIDED`` or why
-    not) and the diagnostics of the decided rows."""
+    """A batch through ``kernel.pick_rows``: how many rows it did not decide, and per row (as
+    columns) ``ints`` = status (``kernel.DECIDED`` or why not), token, kept size and ``floats``
+    = kept mass, entropy, prob, logprob; only decided rows' numbers mean anything."""
 
-    undecided: int  # how many rows have a status other than DECIDED
-    status: I64
-    tokens: I64
-    kept: I64
-    kept_mass: F64
-    entropy: F64
-    prob: F64
-    logprob: F64
+    undecided: int
+    ints: I64
+    floats: F64
 
 
 def plan_for(chain: Chain) -> Plan | None:
@@ -169,6 +170,10 @@ def pick_rows(
     # Two arrays for the kernel to fill (fewer arguments to type on every call), seen as columns.
     out_ints, out_floats = np.empty((3, n), np.int64), np.empty((4, n))
 
+    if n == 1:  # the common single-step case: no closure, no thread hand-off
+        count = kernel.pick_rows(rows, 0, 1, ints, floats, uniforms, out_ints, out_floats)
+        return Picked(count, out_ints, out_floats)
+
     undecided: list[int] = []
 
     def work(lo: int, hi: int) -> None:
@@ -176,7 +181,7 @@ def pick_rows(
         undecided.append(count)
 
     parts(work, n)
-    return Picked(sum(undecided), *out_ints, *out_floats)
+    return Picked(sum(undecided), out_ints, out_floats)
 
 
 def _stack(packs: list[tuple[I64, F64]]) -> tuple[I64, F64]:

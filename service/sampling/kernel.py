@@ -241,7 +241,12 @@ def top_positions(row: Any, block_max: Any, m: int) -> Any:
     return np.sort(found[order])
 
 
-@njit(**_JIT)
+# Sub-block length inside a visited block: the compare over one is vectorised, and only the few
+# sub-blocks with a hit are read entry by entry.
+_SUB = 32
+
+
+@njit(fastmath=_VECTOR_MATH, **_JIT)
 def positions_at_least(row: Any, block_max: Any, floor: Any) -> Any:
     """Positions (ascending) of the finite entries >= ``floor``, visiting only the blocks whose
     maximum reaches it. (Loops over a block's slice: indexing the whole row by a computed
@@ -251,11 +256,17 @@ def positions_at_least(row: Any, block_max: Any, floor: Any) -> Any:
     found = np.empty(blocks.size * BLOCK, np.int64)
     count = 0
     for b in blocks:
-        block = row[b * BLOCK : (b + 1) * BLOCK]
-        for i in range(block.size):
-            if block[i] >= floor:
-                found[count] = b * BLOCK + i
-                count += 1
+        for lo in range(b * BLOCK, min(b * BLOCK + BLOCK, row.size), _SUB):
+            sub = row[lo : min(lo + _SUB, row.size)]
+            hits = 0
+            for i in range(sub.size):
+                hits += sub[i] >= floor
+            if hits == 0:
+                continue
+            for i in range(sub.size):
+                if sub[i] >= floor:
+                    found[count] = lo + i
+                    count += 1
     return found[:count]
 
 

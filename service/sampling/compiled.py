@@ -23,13 +23,20 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
-from service.sampling import kernel
-from service.sampling.chain import Chain, OccurrencePenalty, RepetitionPenalty, Stage, parse_chain
 from service.sampling.vector_width import prefer_wide_vectors
 
-# Numba reads the target features when it first compiles or loads a cached kernel, which no
-# import does: here is before any of that.
+# Before the kernel module is imported: defining its functions makes numba's code generator,
+# which takes the target features there and then.
 prefer_wide_vectors()
+
+from service.sampling import kernel  # noqa: E402
+from service.sampling.chain import (  # noqa: E402
+    Chain,
+    OccurrencePenalty,
+    RepetitionPenalty,
+    Stage,
+    parse_chain,
+)
 
 F32 = NDArray[np.float32]
 F64 = NDArray[np.float64]

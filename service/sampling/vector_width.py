@@ -5,8 +5,8 @@ LLVM's tuning for Intel server CPUs with AVX-512 prefers 256-bit vectors (to avo
 drop wide instructions once caused), so numba's code uses half the width that numpy's own
 ``np.exp`` uses on the same CPU. The kernel's fused pass is an exp per logit; on such a CPU,
 512-bit vectors make it about a fifth faster (``loadtest/bench_sampling.py``). Numba reads the
-target features from ``NUMBA_CPU_FEATURES`` when it first compiles; an operator who has set it
-keeps their choice.
+target features from ``NUMBA_CPU_FEATURES`` when it makes its code generator (``compiled`` calls
+this before importing the kernel); an operator who has set the variable keeps their choice.
 """
 
 from __future__ import annotations
@@ -28,4 +28,9 @@ def prefer_wide_vectors() -> str | None:
     if "+avx512f" not in features.split(","):
         return None
     os.environ[_OVERRIDE] = f"{features},-prefer-256-bit"
+    # numba read its environment when it was imported: have it read it again. (It has no
+    # effect once numba has made its code generator, which defining a kernel function does.)
+    from numba.core import config
+
+    config.reload_config()
     return os.environ[_OVERRIDE]

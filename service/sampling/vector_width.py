@@ -32,5 +32,5 @@ def prefer_wide_vectors() -> str | None:
     # effect once numba has made its code generator, which defining a kernel function does.)
     from numba.core import config
 
-    config.reload_config()
+    config.reload_config()  # type: ignore[no-untyped-call]
     return os.environ[_OVERRIDE]

@@ -65,6 +65,25 @@ def test_row_token_depends_only_on_its_own_stream() -> None:
         assert alone.tokens[0] == whole.tokens[b]
 
 
+def test_draws_follow_splitmix64_on_both_paths() -> None:
+    # SplitMix64 (Steele, Lea & Flood 2014): the first output for seed 0 is 0xe220a8397b1dcdaf
+    # (a widely published test value, quoted from memory). Both paths draw row b with output
+    # first_stream + b, the compiled kernel in its own uint64 arithmetic: on a flat row of
+    # 2**16 tokens the token is floor(u * V), so the drawn ids reveal the uniforms used.
+    from service.sampling.core import _uniforms
+
+    assert _uniforms(0, 0, 1)[0] == (0xE220A8397B1DCDAF >> 11) * 2.0**-53
+    vocab = 2**16
+    flat = np.zeros((3, vocab), np.float32)
+    for seed in (0, 1, 2**53 - 1, 2**63 + 5, 2**64 - 1):
+        for first in (0, 7, 2**40):
+            want = np.floor(_uniforms(seed, first, 3) * vocab).astype(np.int64)
+            for kernel in ("compiled", "numpy"):
+                chain = parse_chain([{"top_k": vocab}])
+                got = pick(chain, flat, seed=seed, first_stream=first, kernel=kernel).tokens
+                np.testing.assert_array_equal(got, want, err_msg=f"{kernel} {seed} {first}")
+
+
 def test_rows_of_a_batch_are_independent() -> None:
     # Two identical rows in 20 000 batches: the pair of tokens must look independent
     # (SciPy's chi-square test of independence on the contingency table).

@@ -70,6 +70,7 @@ class Plan:
     tail: tuple[Stage, ...]  # the first truncation (top_k, greedy or min_p) and what follows
     needs_history: bool
     static: tuple[I64, F64]  # the packed chain when no stage reads the history
+    static_rows: tuple[I64, F64]  # the same as one-row 2-D views, the form pick_rows reads
 
 
 @dataclass(frozen=True)
@@ -120,12 +121,14 @@ def _plan(chain: Chain) -> Plan | None:
     ):
         return None
     prefix, tail = chain.stages[:start], chain.stages[start:]
+    static = _pack(chain.min_keep, prefix, tail, [])
     return Plan(
         min_keep=chain.min_keep,
         prefix=prefix,
         tail=tail,
         needs_history=any(s.method in _HISTORY_EDITS for s in chain.stages),
-        static=_pack(chain.min_keep, prefix, tail, []),
+        static=static,
+        static_rows=(static[0][None, :], static[1][None, :]),
     )
 
 
@@ -163,28 +166,31 @@ def pick_rows(
     plan: Plan,
     rows: F32,
     histories: list[list[int]],
-    uniforms: F64,
+    seed: int,
+    first_stream: int,
     parts: Callable[[Callable[[int, int], None], int], None],
 ) -> Picked:
-    """A batch through the kernel; ``parts(work, n)`` runs ``work(lo, hi)`` over the rows (in
+    """A batch through the kernel, row ``b`` drawing with output ``first_stream + b`` of
+    SplitMix64 seeded with ``seed``; ``parts(work, n)`` runs ``work(lo, hi)`` over the rows (in
     threads: the kernel releases the GIL)."""
     n = rows.shape[0]
     rows = _read_only(rows)
     if plan.needs_history:
         ints, floats = _stack([packed(plan, h) for h in histories])
     else:
-        ints, floats = plan.static[0][None, :], plan.static[1][None, :]
+        ints, floats = plan.static_rows
     # Two arrays for the kernel to fill (fewer arguments to type on every call), seen as columns.
     out_ints, out_floats = np.empty((3, n), np.int64), np.empty((4, n))
+    seed_stream = np.array((seed, first_stream), np.uint64)
 
     if n == 1:  # the common single-step case: no closure, no thread hand-off
-        count = kernel.pick_rows(rows, 0, 1, ints, floats, uniforms, out_ints, out_floats)
+        count = kernel.pick_rows(rows, 0, 1, ints, floats, seed_stream, out_ints, out_floats)
         return Picked(count, out_ints, out_floats)
 
     undecided: list[int] = []
 
     def work(lo: int, hi: int) -> None:
-        count = kernel.pick_rows(rows, lo, hi, ints, floats, uniforms, out_ints, out_floats)
+        count = kernel.pick_rows(rows, lo, hi, ints, floats, seed_stream, out_ints, out_floats)
         undecided.append(count)
 
     parts(work, n)
@@ -288,4 +294,4 @@ def warm_up() -> None:
         plan = plan_for(chain)
         assert plan is not None
         decide(plan, raw, [1, 2, 3], 0.5)
-        pick_rows(plan, raw[None, :], [[1]], np.array([0.5]), lambda work, n: work(0, n))
+        pick_rows(plan, raw[None, :], [[1]], 7, 0, lambda work, n: work(0, n))

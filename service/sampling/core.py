@@ -137,11 +137,11 @@ def pick(
     _check_seed(seed)
     histories = _histories(history, rows.shape)
     _check_token_ids(chain, rows.shape[1])
-    uniforms = _uniforms(seed, first_stream, rows.shape[0])
     plan = _plan(chain, kernel)
     if plan is None:
+        uniforms = _uniforms(seed, first_stream, rows.shape[0])
         return _pick_numpy(chain, rows, histories, uniforms, seed, threads)
-    return _pick_compiled(chain, plan, rows, histories, uniforms, seed, threads)
+    return _pick_compiled(chain, plan, rows, histories, seed, first_stream, threads)
 
 
 def _plan(chain: Chain, kernel: Kernel | None) -> Plan | None:
@@ -161,8 +161,8 @@ def _pick_compiled(
     plan: Plan,
     rows: F32,
     histories: list[list[int]],
-    uniforms: F64,
     seed: int,
+    first_stream: int,
     threads: int | None,
 ) -> PickResult:
     """Rows through the compiled kernel, in parallel threads for large batches (the kernel
@@ -170,15 +170,19 @@ def _pick_compiled(
     assert compiled is not None
     workers = _thread_count(threads, rows.size, rows.shape[0])
     out = compiled.pick_rows(
-        plan, rows, histories, uniforms, lambda work, n: _in_parallel(work, n, workers)
+        plan, rows, histories, seed, first_stream, lambda work, n: _in_parallel(work, n, workers)
     )
-    (status, tokens, kept), (kept_mass, entropy, prob, logprob) = out.ints, out.floats
+    # Indexing, not unpacking: iterating a 2-D array costs twice as much, a one-row pick's 2 µs.
+    ints, floats = out.ints, out.floats
+    tokens, kept = ints[1], ints[2]
+    kept_mass, entropy, prob, logprob = floats[0], floats[1], floats[2], floats[3]
     fallback: list[str | None] = [None] * rows.shape[0]
     # The kernel counts what it hands back: no array pass over the statuses when that is none.
-    rest = _handed_back(rows, status != compiled.kernel.DECIDED) if out.undecided else []
+    rest = _handed_back(rows, ints[0] != compiled.kernel.DECIDED) if out.undecided else []
     if rest:
+        uniforms = _uniforms(seed, first_stream, rows.shape[0])[rest]
         others = _pick_numpy(
-            chain, rows[rest], [histories[b] for b in rest], uniforms[rest], seed, threads
+            chain, rows[rest], [histories[b] for b in rest], uniforms, seed, threads
         )
         tokens[rest], kept[rest] = others.tokens, others.kept
         kept_mass[rest], entropy[rest] = others.kept_mass, others.entropy

@@ -561,6 +561,23 @@ def decide_row(raw: Any, ints: Any, floats: Any, u: float) -> Any:
     return DECIDED, ids, probs, token, probs[at], kept_mass, entropy, raw[token] - log_norm
 
 
+_GOLDEN_GAMMA = np.uint64(0x9E3779B97F4A7C15)
+_MIX_1 = np.uint64(0xBF58476D1CE4E5B9)
+_MIX_2 = np.uint64(0x94D049BB133111EB)
+
+
+@njit(**_JIT)
+def uniform(seed: Any, stream: Any) -> float:
+    """Output ``stream`` (0-based) of SplitMix64 seeded with ``seed`` (Steele, Lea & Flood 2014)
+    as a double in [0, 1) from its top 53 bits: ``core._uniforms`` in uint64 arithmetic, which
+    wraps as the generator's does."""
+    z = seed + (stream + np.uint64(1)) * _GOLDEN_GAMMA
+    z = (z ^ (z >> np.uint64(30))) * _MIX_1
+    z = (z ^ (z >> np.uint64(27))) * _MIX_2
+    z = z ^ (z >> np.uint64(31))
+    return float(z >> np.uint64(11)) * 2.0**-53
+
+
 @njit(**_JIT)
 def pick_rows(
     rows: Any,
@@ -568,17 +585,21 @@ def pick_rows(
     hi: int,
     ints: Any,
     floats: Any,
-    uniforms: Any,
+    seed_stream: Any,
     out_ints: Any,
     out_floats: Any,
 ) -> int:
     """Rows ``lo:hi`` of a batch, each with its own row of ``ints``/``floats`` (or all with the
     only one), written into columns of ``out_ints`` (status, token, kept) and ``out_floats``
-    (kept mass, entropy, prob, logprob). Returns how many rows it did not decide."""
+    (kept mass, entropy, prob, logprob). Row ``b`` draws with output ``first_stream + b`` of
+    SplitMix64 seeded with ``seed``; ``seed_stream`` is the uint64 pair (seed, first_stream).
+    Returns how many rows it did not decide."""
     undecided = 0
+    seed, first_stream = seed_stream[0], seed_stream[1]
     for b in range(lo, hi):
         plan = min(b, ints.shape[0] - 1)
-        decided = decide_row(rows[b], ints[plan], floats[plan], uniforms[b])
+        u = uniform(seed, first_stream + np.uint64(b))
+        decided = decide_row(rows[b], ints[plan], floats[plan], u)
         out_ints[0, b], out_ints[1, b], out_ints[2, b] = decided[0], decided[3], decided[1].size
         out_floats[0, b], out_floats[1, b] = decided[5], decided[6]
         out_floats[2, b], out_floats[3, b] = decided[4], decided[7]

@@ -3,7 +3,8 @@ answers a fixed pick-shaped JSON (so keepset's own client can call it), served b
 uvicorn (httptools, uvloop) as keepset, on TCP or a Unix socket (uvicorn's ``--uds``).
 
 A JSON body with ``logits_shm`` is treated as keepset treats it: the segment named in
-``KEEPSET_SHM_DIR`` is mapped and viewed (keepset's own reader), then closed.
+``KEEPSET_SHM_DIR`` is mapped and viewed (keepset's own reader, keeping mappings open between
+requests as a keepset worker does), then let go.
 """
 
 from __future__ import annotations
@@ -14,9 +15,10 @@ from typing import Any
 
 import orjson
 
-from service.shm import ShmRef, read_segment
+from service.shm import SegmentMaps, ShmRef, read_segment
 
 _SHM_DIR = Path(os.environ["KEEPSET_SHM_DIR"]) if os.environ.get("KEEPSET_SHM_DIR") else None
+_MAPS = None if _SHM_DIR is None else SegmentMaps(_SHM_DIR)
 _REPLY = orjson.dumps(
     {
         "request_id": "floor",
@@ -56,7 +58,7 @@ async def app(scope: dict[str, Any], receive: Any, send: Any) -> None:
         more = message.get("more_body", False)
     if dict(scope["headers"]).get(b"content-type", b"").startswith(b"application/json"):
         ref = ShmRef.model_validate(orjson.loads(b"".join(chunks))["logits_shm"])
-        read_segment(ref, _SHM_DIR, _no_limits).close()
+        read_segment(ref, _SHM_DIR, _no_limits, _MAPS).close()
     await send(
         {
             "type": "http.response.start",

@@ -70,6 +70,7 @@ from service.serving import (
     serve,
 )
 from service.settings import Settings
+from service.shm import SegmentMaps
 from service.watch import CollapseWatch
 
 log = logging.getLogger("keepset")
@@ -103,6 +104,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         # Without a configured secret (an app made in process) ids are valid for this app only.
         request_ids=RequestIds(new_secret() if secret is None else secret.get_secret_value()),
         outcomes=_outcome_store(settings),
+        segment_maps=None if settings.shm_dir is None else SegmentMaps(settings.shm_dir),
     )
     warn_if_off(snapshot.routes, settings.capture_dir)
     if not snapshot.valid:
@@ -135,6 +137,8 @@ def create_app(settings: Settings | None = None) -> FastAPI:
             await run_in_threadpool(live.capture.close)
         if live.outcomes is not None:
             live.outcomes.close()
+        if live.segment_maps is not None:
+            live.segment_maps.close()
 
     app = FastAPI(
         title="keepset",

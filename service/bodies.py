@@ -70,7 +70,7 @@ class PickInput:
     seed: int | None
     routing_key: str | None
     adjust: dict[str, float]
-    # Set when ``logits`` views a shared-memory segment: release() unmaps it.
+    # Set when ``logits`` views a shared-memory segment: release() lets it go.
     mapped: MappedLogits | None = None
 
     def release(self) -> None:
@@ -120,7 +120,10 @@ async def pick_input(request: Request, live: Live) -> PickInput:
     if parsed.logits_shm is not None:
         settings = live.settings
         mapped = read_segment(
-            parsed.logits_shm, settings.shm_dir, lambda b, v: check_shape(b, v, settings)
+            parsed.logits_shm,
+            settings.shm_dir,
+            lambda b, v: check_shape(b, v, settings),
+            live.segment_maps,
         )
         logits = mapped.logits
     elif parsed.logits_npy is not None:

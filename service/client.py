@@ -14,7 +14,9 @@ the query string. Errors come back as :class:`KeepsetError` carrying the problem
 
 On the same host or pod: ``uds="/run/keepset/keepset.sock"`` talks over keepset's Unix socket
 (``KEEPSET_UDS``), and ``shm_dir="/dev/shm"`` (the server's ``KEEPSET_SHM_DIR``) writes the
-logits into a shared-memory segment the client owns and sends only its name.
+logits into a shared-memory segment the client owns and sends only its name. A caller that can
+produce its logits in place asks for ``ks.shared_logits(rows, vocab)``, writes into its
+``array`` and passes it to ``pick``: then nothing is copied at all.
 ``dtype="float16"`` or ``"bfloat16"`` halves what travels, in either mode.
 """
 
@@ -181,16 +183,55 @@ def _pick_request(
     return to_npy(array), params
 
 
+class SharedLogits:
+    """A ``[rows, vocab]`` block of logits in a shared-memory segment of the client's own, for
+    callers that can write their logits in place: fill ``array`` (the model's output copied or
+    written straight there) and pass this object to ``pick``, which then sends only the
+    segment's name. Made by ``Client.shared_logits``; reuse it step after step, one pick at a
+    time, and close it (or use ``with``) when done. ``array`` is float32 or float16, or raw
+    uint16 bits for bfloat16."""
+
+    def __init__(self, folder: Path, shape: tuple[int, ...], dtype: WireDtype):
+        self._segment = Segment(folder)
+        try:
+            self.array: NDArray[Any] = self._segment.view(shape, dtype)
+        except BaseException:
+            self._segment.close()
+            raise
+        self.descriptor = {
+            "segment": self._segment.name,
+            "offset": 0,
+            "shape": list(shape),
+            "dtype": dtype,
+        }
+
+    def close(self) -> None:
+        """Remove the segment; ``array`` must not be used afterwards."""
+        self.array = np.empty((0, 0), self.array.dtype)
+        self._segment.close()
+
+    def __enter__(self) -> SharedLogits:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+
 def _shm_body(
-    segment: Segment,
-    logits: NDArray[np.floating],
+    segment: Segment | None,
+    logits: NDArray[np.floating] | SharedLogits,
     seed: int | None,
     routing_key: str | None,
     history: Sequence[Sequence[int]] | None,
     adjust: Mapping[str, float] | None,
     dtype: WireDtype | None,
 ) -> dict[str, Any]:
-    body: dict[str, Any] = {"logits_shm": segment.write(logits, dtype or "float32")}
+    if isinstance(logits, SharedLogits):
+        shm = logits.descriptor
+    else:
+        assert segment is not None
+        shm = segment.write(logits, dtype or "float32")
+    body: dict[str, Any] = {"logits_shm": shm}
     for name, value in (("seed", seed), ("routing_key", routing_key)):
         if value is not None:
             body[name] = value
@@ -205,7 +246,7 @@ def _shm_body(
 def _pick_post(
     segments: _Segments | None,
     dtype: WireDtype | None,
-    logits: NDArray[np.floating],
+    logits: NDArray[np.floating] | SharedLogits,
     seed: int | None,
     routing_key: str | None,
     history: Sequence[Sequence[int]] | None,
@@ -213,6 +254,9 @@ def _pick_post(
 ) -> Iterator[dict[str, Any]]:
     """The arguments of the ``POST /v1/pick`` that sends ``logits``: a shared-memory descriptor
     (its segment stays leased until the block ends, i.e. until the answer is in) or a .npy body."""
+    if isinstance(logits, SharedLogits):
+        yield {"json": _shm_body(None, logits, seed, routing_key, history, adjust, dtype)}
+        return
     if segments is None:
         body, params = _pick_request(logits, seed, routing_key, history, adjust, dtype)
         yield {"content": body, "params": params, "headers": {"Content-Type": NPY_MEDIA}}
@@ -322,8 +366,17 @@ class _Connection:
             "timeout": timeout,
         }
         self._uds = None if uds is None else str(uds)
-        self._segments = _Segments(Path(shm_dir)) if shm_dir is not None else None
+        self._shm_dir = None if shm_dir is None else Path(shm_dir)
+        self._segments = _Segments(self._shm_dir) if self._shm_dir is not None else None
         self._dtype = dtype
+
+    def shared_logits(self, rows: int, vocab: int, dtype: WireDtype | None = None) -> SharedLogits:
+        """A block of ``[rows, vocab]`` logits to write in place and pass to ``pick`` (which
+        then copies nothing); needs ``shm_dir``. ``dtype`` defaults to the client's, else
+        float32."""
+        if self._shm_dir is None:
+            raise ValueError("shared_logits needs a client made with shm_dir")
+        return SharedLogits(self._shm_dir, (rows, vocab), dtype or self._dtype or "float32")
 
 
 class Client(_Connection):
@@ -336,7 +389,7 @@ class Client(_Connection):
 
     def pick(
         self,
-        logits: NDArray[np.floating],
+        logits: NDArray[np.floating] | SharedLogits,
         *,
         seed: int | None = None,
         routing_key: str | None = None,
@@ -419,7 +472,7 @@ class AsyncClient(_Connection):
 
     async def pick(
         self,
-        logits: NDArray[np.floating],
+        logits: NDArray[np.floating] | SharedLogits,
         *,
         seed: int | None = None,
         routing_key: str | None = None,

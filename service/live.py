@@ -27,6 +27,7 @@ from service.registry import RegistrySnapshot, reload_registry
 from service.request_ids import RequestIds, new_secret
 from service.sampling import KERNEL_PROBLEM, Kernel, kernel_available, warm_up
 from service.settings import Settings
+from service.shm import SegmentMaps
 from service.watch import CollapseWatch
 
 log = logging.getLogger("keepset")
@@ -58,6 +59,8 @@ class Live:
     # Mints and checks request ids; the secret is KEEPSET_REQUEST_SECRET's when set.
     request_ids: RequestIds = field(default_factory=lambda: RequestIds(new_secret()))
     outcomes: OutcomeStore | None = None
+    # Set when KEEPSET_SHM_DIR is: the segments' mappings this worker keeps open.
+    segment_maps: SegmentMaps | None = None
 
 
 def reload_now(live: Live, trigger: str) -> dict[str, Any]:

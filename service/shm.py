@@ -4,7 +4,12 @@ the reusable segment a sender (the Python client) writes into.
 
 A segment is a plain file in that folder (a memory-backed one: /dev/shm, a memory emptyDir).
 The caller writes a little-endian ``[V]`` or ``[B, V]`` block at ``offset`` and names it;
-keepset maps just that window, views float32 in place and converts float16/bfloat16.
+keepset views float32 in place and converts float16/bfloat16.
+
+A worker keeps the mappings of the segments it read last open (``SegmentMaps``): a caller
+reuses its segment step after step, and mapping 16 MB anew costs more than deciding the rows
+in it. Every request still opens the name and checks the file (same file, regular, long
+enough); a file replaced, grown or removed is mapped again or let go.
 
 One race cannot be guarded here: a caller that shrinks a segment while a request naming it is
 in flight. The size is checked when the request arrives; a page cut away later makes the
@@ -21,7 +26,10 @@ import os
 import re
 import secrets
 import stat
+import threading
+from collections import OrderedDict
 from collections.abc import Callable
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
@@ -51,26 +59,102 @@ class ShmRef(BaseModel):
 
 
 class MappedLogits:
-    """float32 logits read from a segment. float32 is a read-only view of the mapping, which
-    stays open until :meth:`close`; float16/bfloat16 are converted copies (already unmapped)."""
+    """float32 logits read from a segment. float32 is a read-only view of the caller's segment
+    (``shared``); float16/bfloat16 are converted copies. ``mapping`` is the mapping to close
+    with the request, when no ``SegmentMaps`` keeps it."""
 
-    def __init__(self, logits: NDArray[np.float32], mapping: mmap.mmap | None):
+    def __init__(self, logits: NDArray[np.float32], shared: bool, mapping: mmap.mmap | None):
         self.logits = logits
+        self._shared = shared
         self._mapping = mapping
 
     @property
     def shared(self) -> bool:
         """True while ``logits`` is a view of the caller's segment (which it may rewrite)."""
-        return self._mapping is not None
+        return self._shared
 
     def close(self) -> None:
         self.logits = _EMPTY
+        self._shared = False
         if self._mapping is not None:
-            # A view still living (an error's traceback holds it) makes Python refuse to unmap
-            # under it; the mapping then goes when the last view is freed.
-            with contextlib.suppress(BufferError):
-                self._mapping.close()
+            _close(self._mapping)
             self._mapping = None
+
+
+def _close(mapping: mmap.mmap) -> None:
+    # A view still living (an error's traceback holds it) makes Python refuse to unmap under
+    # it; the mapping then goes when the last view is freed.
+    with contextlib.suppress(BufferError):
+        mapping.close()
+
+
+@dataclass
+class _Kept:
+    """One open mapping of a whole segment file, and which file it was."""
+
+    device: int
+    inode: int
+    size: int
+    mapping: mmap.mmap
+
+
+class SegmentMaps:
+    """The mappings of the segments a worker read last, kept open between requests (at most
+    ``limit``, the least recently used let go first). A mapping keeps its file's memory alive
+    after the caller removes it, so a name seen removed or replaced lets its mapping go, and
+    every new mapping first drops those of the others whose file is gone."""
+
+    def __init__(self, folder: Path, limit: int = 16):
+        self._folder = folder
+        self._limit = limit
+        self._kept: OrderedDict[str, _Kept] = OrderedDict()
+        self._lock = threading.Lock()
+
+    def __len__(self) -> int:
+        return len(self._kept)
+
+    def mapping(self, fd: int, info: os.stat_result, name: str) -> mmap.mmap:
+        """The open mapping of the whole file ``fd`` (just checked, named ``name``)."""
+        with self._lock:
+            kept = self._kept.get(name)
+            if kept is not None and (kept.device, kept.inode, kept.size) == (
+                info.st_dev,
+                info.st_ino,
+                info.st_size,
+            ):
+                self._kept.move_to_end(name)
+                return kept.mapping
+            self._drop_gone()
+            mapping = mmap.mmap(fd, info.st_size, flags=_MAP_FLAGS, prot=mmap.PROT_READ)
+            self._forget(name)
+            self._kept[name] = _Kept(info.st_dev, info.st_ino, info.st_size, mapping)
+            while len(self._kept) > self._limit:
+                _close(self._kept.popitem(last=False)[1].mapping)
+            return mapping
+
+    def forget(self, name: str) -> None:
+        """Let the mapping of ``name`` go (its file is gone or no longer what was mapped)."""
+        with self._lock:
+            self._forget(name)
+
+    def close(self) -> None:
+        with self._lock:
+            while self._kept:
+                _close(self._kept.popitem()[1].mapping)
+
+    def _forget(self, name: str) -> None:
+        kept = self._kept.pop(name, None)
+        if kept is not None:
+            _close(kept.mapping)
+
+    def _drop_gone(self) -> None:
+        for name, kept in list(self._kept.items()):
+            try:
+                info = os.stat(self._folder / name, follow_symlinks=False)
+            except OSError:
+                info = None
+            if info is None or (info.st_dev, info.st_ino) != (kept.device, kept.inode):
+                self._forget(name)
 
 
 def segment_shape(ref: ShmRef) -> tuple[int, int]:
@@ -85,12 +169,17 @@ def segment_shape(ref: ShmRef) -> tuple[int, int]:
 
 
 def read_segment(
-    ref: ShmRef, folder: Path | None, within_limits: Callable[[int, int], None]
+    ref: ShmRef,
+    folder: Path | None,
+    within_limits: Callable[[int, int], None],
+    maps: SegmentMaps | None = None,
 ) -> MappedLogits:
     """Map the logits ``ref`` names; every way it can be wrong is a problem document.
 
     ``within_limits(rows, vocab)`` raises for shapes over the server's limits; it runs before
-    the file is opened, so an oversized descriptor never reaches the file system.
+    the file is opened, so an oversized descriptor never reaches the file system. With
+    ``maps``, the segment's mapping is kept open for the next request; without, just the window
+    is mapped and :meth:`MappedLogits.close` unmaps it.
     """
     if folder is None:
         raise Problem(
@@ -119,30 +208,37 @@ def read_segment(
         )
     count = math.prod(ref.shape)
     nbytes = count * storage.itemsize
-    mapping, skip = _map_window(folder / name, name, ref.offset, nbytes)
+    mapping, skip = _map_window(folder / name, name, ref.offset, nbytes, maps)
+    own = mapping if maps is None else None  # the request's to close, or the maps' to keep
     view = np.frombuffer(mapping, dtype=storage, count=count, offset=skip)
     view = view.reshape(ref.shape)
     if ref.dtype == "float32":
-        return MappedLogits(view, mapping)
+        return MappedLogits(view, True, own)
     converted = to_float32(view, ref.dtype)
     del view  # the last export of the mapping, so it can close now
-    mapping.close()
-    return MappedLogits(converted, None)
+    if own is not None:
+        own.close()
+    return MappedLogits(converted, False, None)
 
 
 _MAP_FLAGS = mmap.MAP_SHARED | getattr(mmap, "MAP_POPULATE", 0)
 
 
-def _map_window(path: Path, name: str, offset: int, nbytes: int) -> tuple[mmap.mmap, int]:
-    """A read-only mapping from ``offset`` rounded down to the allocation granularity to
-    ``offset + nbytes``, after checking the file is a regular one that long; and where in the
-    mapping ``offset`` is."""
+def _map_window(
+    path: Path, name: str, offset: int, nbytes: int, maps: SegmentMaps | None
+) -> tuple[mmap.mmap, int]:
+    """A read-only mapping that holds ``offset`` to ``offset + nbytes`` (the whole file from
+    ``maps``, else just that window, its start rounded down to the allocation granularity),
+    after checking the file is a regular one that long; and where in the mapping ``offset``
+    is."""
     # O_NOFOLLOW: a link could point anywhere the server may read. O_NONBLOCK: opening a FIFO
     # for reading would otherwise wait for a writer forever.
     flags = os.O_RDONLY | os.O_NOFOLLOW | os.O_NONBLOCK | os.O_CLOEXEC
     try:
         fd = os.open(path, flags)
     except OSError as exc:
+        if maps is not None:
+            maps.forget(name)
         raise _open_problem(exc, name) from None
     try:
         info = os.fstat(fd)
@@ -161,6 +257,8 @@ def _map_window(path: Path, name: str, offset: int, nbytes: int) -> tuple[mmap.m
             )
         start = offset - offset % mmap.ALLOCATIONGRANULARITY
         try:
+            if maps is not None:
+                return maps.mapping(fd, info, name), offset
             # MAP_POPULATE maps every page in one call: the kernel then reads the whole window
             # without a page fault per 4 KiB (about a millisecond for a 16 MB batch).
             window = mmap.mmap(
@@ -225,6 +323,19 @@ class Segment:
         assert self._mapping is not None
         self._mapping[: data.nbytes] = data.data.cast("B")
         return {"segment": self.name, "offset": 0, "shape": list(data.shape), "dtype": dtype}
+
+    def view(self, shape: tuple[int, ...], dtype: WireDtype = "float32") -> NDArray[Any]:
+        """A writable ``shape`` array of ``dtype``'s storage (bfloat16 as raw uint16 bits) at
+        the start of the segment, sized for it once: what is written there is what keepset
+        reads, with no copy on the way. The segment cannot grow while the view lives."""
+        if len(shape) not in (1, 2) or any(n < 1 for n in shape):
+            raise ValueError(f"shape must be [V] or [B, V] of sizes >= 1, got {list(shape)}")
+        storage = STORAGE[dtype]
+        nbytes = math.prod(shape) * storage.itemsize
+        if self._mapping is None or nbytes > self._size:
+            self._grow(max(nbytes, mmap.PAGESIZE))
+        assert self._mapping is not None
+        return np.frombuffer(self._mapping, storage, math.prod(shape)).reshape(shape)
 
     def _grow(self, size: int) -> None:
         os.ftruncate(self._fd, size)

@@ -127,3 +127,45 @@ def test_async_shm_and_uds(served: Server, folders: tuple[Path, Path]) -> None:
 
     asyncio.run(run())
     assert not list(shm_dir.iterdir())
+
+
+@pytest.mark.parametrize("dtype", ["float32", "float16", "bfloat16"])
+def test_logits_written_in_place_equal_npy_picks(
+    served: Server, folders: tuple[Path, Path], dtype: Any
+) -> None:
+    # A caller that writes its logits straight into the client's shared block: the picks
+    # equal .npy picks of the same stored values, step after step in the same block, sync and
+    # async, and closing the block removes its segment.
+    from service.dtypes import to_wire
+
+    shm_dir, sock = folders
+    steps = [batch(3, 2500, seed=s) for s in range(3)]
+    with Client(served.base_url, KEY, dtype=dtype) as tcp:
+        expected = [same(tcp.pick(x, seed=s, routing_key="w")) for s, x in enumerate(steps)]
+    with Client("http://keepset", KEY, uds=sock, shm_dir=shm_dir) as ks:
+        with ks.shared_logits(3, 2500, dtype) as block:
+            assert block.array.dtype == {"float32": "<f4", "float16": "<f2"}.get(dtype, "<u2")
+            got = []
+            for s, x in enumerate(steps):
+                block.array[:] = to_wire(x, dtype)
+                got.append(same(ks.pick(block, seed=s, routing_key="w")))
+            assert got == expected
+            assert len(list(shm_dir.iterdir())) == 1, "the block's segment only; no copy made"
+        assert not list(shm_dir.iterdir())
+
+    async def run() -> list[tuple[Any, ...]]:
+        async with AsyncClient("http://keepset", KEY, uds=sock, shm_dir=shm_dir) as ks:
+            with ks.shared_logits(3, 2500, dtype) as block:
+                out = []
+                for s, x in enumerate(steps):
+                    block.array[:] = to_wire(x, dtype)
+                    out.append(same(await ks.pick(block, seed=s, routing_key="w")))
+                return out
+
+    assert asyncio.run(run()) == expected
+    assert not list(shm_dir.iterdir())
+
+
+def test_shared_logits_need_a_shared_folder(served: Server) -> None:
+    with Client(served.base_url, KEY) as ks, pytest.raises(ValueError, match="shm_dir"):
+        ks.shared_logits(1, 10)

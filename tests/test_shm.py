@@ -117,16 +117,76 @@ def mapped_paths(pid: int) -> str:
     return Path(f"/proc/{pid}/maps").read_text()
 
 
-def test_mapping_is_closed_after_the_pick(shm_server: Server, shm_dir: Path) -> None:
-    path = write_segment(shm_dir, "closed-after", np.zeros((2, V), np.float32), offset=0)
-    r = shm_pick(shm_server, {"segment": "closed-after", "shape": [2, V]}, seed=3)
-    assert r.status_code == 200, r.text
-    assert str(path) not in mapped_paths(shm_server.process.pid)
-    # Also after an error raised while the view was in use (a 422 from the sampler).
-    bad = write_segment(shm_dir, "closed-after-422", np.full(V, -np.inf, np.float32), offset=0)
-    r = shm_pick(shm_server, {"segment": "closed-after-422", "shape": [V]})
-    assert_problem(r, 422)
-    httpx.get(f"{shm_server.base_url}/healthz")  # the error's traceback is gone by the next one
+def test_mappings_are_kept_for_reuse_and_let_go_when_their_file_goes(
+    shm_server: Server, shm_dir: Path
+) -> None:
+    """A worker keeps a segment's mapping open between requests (a caller reuses its segment
+    step after step) but reads what is there now, maps a replaced file anew, and lets a
+    mapping go once its file is removed, so it never keeps a removed segment's memory alive."""
+    pid = shm_server.process.pid
+    rng = np.random.default_rng(11)
+    first, second, third = (rng.standard_normal((2, V)).astype(np.float32) * 3 for _ in range(3))
+    path = write_segment(shm_dir, "reused", first, offset=0)
+    descriptor = {"segment": "reused", "shape": [2, V]}
+
+    def same_as_npy(logits: np.ndarray) -> None:
+        assert answer(shm_pick(shm_server, descriptor, seed=5)) == answer(
+            npy_pick(shm_server, logits, {"seed": 5})
+        )
+
+    same_as_npy(first)
+    assert mapped_paths(pid).count(str(path)) == 1
+    with path.open("r+b") as f:  # rewritten in place, as a caller does between steps
+        f.write(second.tobytes())
+    same_as_npy(second)
+    assert mapped_paths(pid).count(str(path)) == 1, "the same file keeps one mapping"
+    fresh = shm_dir / "reused.new"
+    fresh.write_bytes(third.tobytes())
+    os.replace(fresh, path)  # another file under the same name
+    same_as_npy(third)
+    maps = mapped_paths(pid)
+    assert maps.count(str(path)) == 1 and "(deleted)" not in maps
+    path.unlink()
+    assert_problem(shm_pick(shm_server, descriptor), 404, "no segment")
+    assert str(path) not in mapped_paths(pid)
+
+    # A segment removed without being named again goes when the worker maps another one.
+    gone = write_segment(shm_dir, "gone-later", first, offset=0)
+    assert shm_pick(shm_server, {"segment": "gone-later", "shape": [2, V]}).status_code == 200
+    gone.unlink()
+    write_segment(shm_dir, "next-one", first, offset=0)
+    assert shm_pick(shm_server, {"segment": "next-one", "shape": [2, V]}).status_code == 200
+    assert str(gone) not in mapped_paths(pid)
+
+
+def test_mappings_kept_are_bounded(shm_dir: Path) -> None:
+    # At most ``limit`` mappings stay open; the least recently used goes first.
+    from service.shm import SegmentMaps, ShmRef, read_segment
+
+    maps = SegmentMaps(shm_dir, limit=3)
+    names = [f"bounded-{i}" for i in range(5)]
+    for name in names:
+        write_segment(shm_dir, name, np.arange(8, dtype=np.float32), offset=0)
+    for name in [*names, names[3]]:
+        read_segment(ShmRef(segment=name, shape=[8]), shm_dir, lambda b, v: None, maps).close()
+    maps_text = mapped_paths(os.getpid())
+    held = [name for name in names if str(shm_dir / name) in maps_text]
+    assert held == names[2:]
+    assert len(maps) == 3
+    maps.close()
+    assert not any(str(shm_dir / name) in mapped_paths(os.getpid()) for name in names)
+
+
+def test_a_view_in_use_when_the_request_fails_is_released(
+    shm_server: Server, shm_dir: Path
+) -> None:
+    # An error raised while the view was in use (a 422 from the sampler) leaves the worker
+    # serving, and the segment's mapping is let go with its file as any other.
+    bad = write_segment(shm_dir, "fails-422", np.full(V, -np.inf, np.float32), offset=0)
+    assert_problem(shm_pick(shm_server, {"segment": "fails-422", "shape": [V]}), 422)
+    bad.unlink()
+    write_segment(shm_dir, "after-422", np.zeros(V, np.float32), offset=0)
+    assert shm_pick(shm_server, {"segment": "after-422", "shape": [V]}).status_code == 200
     assert str(bad) not in mapped_paths(shm_server.process.pid)
 
 

@@ -1,11 +1,14 @@
 """End-to-end ``/v1/pick`` step time per transport, each against its floor, in one interleaved run.
 
-Transports: TCP with a ``.npy`` body, the Unix socket with a ``.npy`` body, and shared memory
-(the segment written by the client, the small JSON over the Unix socket). A step is one
-``Client.pick`` of keepset's own client: encoding or writing the segment, the request, the
-answer. Each transport's floor is the bare app of loadtest/floor_app.py reached the same way
-(same client, same body; for shared memory it maps the segment), so keepset / floor is what
-keepset adds. "pick" is the in-process ``pick`` of the same batch with the same chain.
+Transports: TCP with a ``.npy`` body, the Unix socket with a ``.npy`` body, shared memory (the
+client copies the batch into its segment, the small JSON goes over the Unix socket), and shared
+memory in place (the caller's logits are already in the client's ``shared_logits`` block, as
+when a model writes its output there: nothing is copied). A step is one ``Client.pick`` of
+keepset's own client: encoding or writing the segment, the request, the answer. Each
+transport's floor is the bare app of loadtest/floor_app.py reached the same way (same client,
+same body; for shared memory it maps the segment), so keepset / floor is what keepset adds.
+"pick" is the in-process ``pick`` of the same batch with the same chain, and step / pick the
+step's time over it (per repeat, then the median).
 
 Repeats are interleaved (every size and transport once per repeat); the table gives medians over
 repeats of each repeat's median, and the ratios are taken per repeat. Servers run on 127.0.0.1
@@ -30,14 +33,14 @@ from typing import Any
 import numpy as np
 from bench_http import KEY, in_process_ms, start_floor, start_keepset, stop, write_results
 
-from service.client import Client
+from service.client import Client, SharedLogits
 
 SIZES = [(1, 32_000), (32, 32_000), (128, 32_000), (1, 128_256), (32, 128_256), (128, 128_256)]
-TRANSPORTS = ("tcp .npy", "uds .npy", "shm")
+TRANSPORTS = ("tcp .npy", "uds .npy", "shm", "shm in place")
 MAX_BODY = 96 * 1024 * 1024  # a [128, 128256] float32 .npy is 65.7 MB
 
 
-def step_ms(client: Client, logits: np.ndarray, steps: int) -> float:
+def step_ms(client: Client, logits: np.ndarray | SharedLogits, steps: int) -> float:
     client.pick(logits, seed=1, routing_key="bench")  # warm: connection, segment size
     times = []
     for i in range(steps):
@@ -83,26 +86,41 @@ def main() -> int:
             Client(base, KEY, timeout=60, uds=floor_sock, shm_dir=shm_dir),
         ),
     }
+    clients["shm in place"] = clients["shm"]
     batches = {
         (b, v): (np.random.default_rng(v + b).standard_normal((b, v)) * 3).astype(np.float32)
         for b, v in SIZES
     }
+    # The in-place blocks, written once before any timing (the model's own write).
+    blocks: dict[tuple[int, int, int], SharedLogits] = {}
+    for (b, v), logits in batches.items():
+        for role, client in enumerate(clients["shm"]):
+            blocks[(b, v, role)] = client.shared_logits(b, v)
+            blocks[(b, v, role)].array[:] = logits
     keepset_ms: dict[tuple[Any, ...], list[float]] = defaultdict(list)
     floor_ms: dict[tuple[Any, ...], list[float]] = defaultdict(list)
     ratio: dict[tuple[Any, ...], list[float]] = defaultdict(list)
+    over_pick: dict[tuple[Any, ...], list[float]] = defaultdict(list)
     pick_ms: dict[tuple[int, int], list[float]] = defaultdict(list)
     started = time.monotonic()
     try:
         for _ in range(repeats):
             for size, logits in batches.items():
-                pick_ms[size].append(in_process_ms(logits, count=steps))
+                pick_ms[size].append(in_process_ms(logits, count=max(20, steps)))
                 for name in TRANSPORTS:
                     ks, floor = clients[name]
-                    k, f = step_ms(ks, logits, steps), step_ms(floor, logits, steps)
+                    if name == "shm in place":
+                        k = step_ms(ks, blocks[(*size, 0)], steps)
+                        f = step_ms(floor, blocks[(*size, 1)], steps)
+                    else:
+                        k, f = step_ms(ks, logits, steps), step_ms(floor, logits, steps)
                     keepset_ms[(*size, name)].append(k)
                     floor_ms[(*size, name)].append(f)
                     ratio[(*size, name)].append(k / f)
+                    over_pick[(*size, name)].append(k / pick_ms[size][-1])
     finally:
+        for block in blocks.values():
+            block.close()
         for pair in clients.values():
             for client in pair:
                 client.close()
@@ -112,22 +130,23 @@ def main() -> int:
 
     med: Callable[[list[float]], float] = statistics.median
     print(
-        f"{'B':>4} {'V':>7} {'transport':>9} {'keepset ms':>10} {'floor ms':>9} "
-        f"{'ratio':>6} {'pick ms':>8} {'keepset-floor-pick ms':>21}"
+        f"{'B':>4} {'V':>7} {'transport':>12} {'keepset ms':>10} {'floor ms':>9} "
+        f"{'ratio':>6} {'pick ms':>8} {'step/pick':>9} {'keepset-floor-pick ms':>21}"
     )
     results = []
     for b, v in SIZES:
         for name in TRANSPORTS:
             key = (b, v, name)
-            k, f, r, p = (
+            k, f, r, p, o = (
                 med(keepset_ms[key]),
                 med(floor_ms[key]),
                 med(ratio[key]),
                 med(pick_ms[(b, v)]),
+                med(over_pick[key]),
             )
             print(
-                f"{b:>4} {v:>7} {name:>9} {k:>10.2f} {f:>9.2f} {r:>6.2f} {p:>8.2f} "
-                f"{k - f - p:>21.2f}"
+                f"{b:>4} {v:>7} {name:>12} {k:>10.2f} {f:>9.2f} {r:>6.2f} {p:>8.2f} "
+                f"{o:>9.2f} {k - f - p:>21.2f}"
             )
             results.append(
                 {
@@ -138,6 +157,7 @@ def main() -> int:
                     "floor_ms": f,
                     "ratio": r,
                     "pick_ms": p,
+                    "step_over_pick": o,
                 }
             )
     print(

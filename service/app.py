@@ -477,7 +477,8 @@ async def _pick_answer(
         shadow = after_pick(
             shadow, live, client, route, guarding, kept_rows, data.history, out.seed
         )
-    return JSONResponse(body, background=shadow)
+    # orjson: the standard encoder took a tenth of a 32-row pick's time outside the sampler.
+    return Response(orjson.dumps(body), media_type="application/json", background=shadow)
 
 
 async def _cancel_on_disconnect(request: Request, run: PromptRun) -> None:

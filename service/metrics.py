@@ -11,6 +11,8 @@ from __future__ import annotations
 
 import os
 import re
+from bisect import bisect_left
+from collections import Counter as Tally
 from collections.abc import Sequence
 
 from prometheus_client import (
@@ -151,18 +153,33 @@ def observe_rows(
 ) -> None:
     """Record one batch of sampled rows for a served or shadow policy version."""
     v = str(version)
-    kept_hist = KEPT_TOKENS.labels(policy, v, role)
-    for k in kept:
-        kept_hist.observe(k)
+    observe_all(KEPT_TOKENS.labels(policy, v, role), kept)
     if role != "served":
         return
     ROWS.labels(client, policy, v, arm).inc(len(kept))
-    entropy_hist = ENTROPY.labels(policy, v)
-    for h in entropy:
-        entropy_hist.observe(h)
+    observe_all(ENTROPY.labels(policy, v), entropy)
     for reason in fallback:
         if reason is not None:
             FALLBACKS.labels(policy, v, reason).inc()
+
+
+def observe_all(histogram: Histogram, values: Sequence[float]) -> None:
+    """``histogram.observe(x)`` for every x, with one update per bucket hit and one for the
+    sum. prometheus_client observes one value at a time, and in multiprocess mode every update
+    is a locked write to a shared file: the rows of a 32-row pick took 0.4 ms one by one. This
+    reads the client's histogram internals (bucket bounds and values); if they are not there,
+    it observes one by one."""
+    bounds = getattr(histogram, "_upper_bounds", None)
+    buckets = getattr(histogram, "_buckets", None)
+    total = getattr(histogram, "_sum", None)
+    if bounds is None or buckets is None or total is None or len(values) < 2:
+        for x in values:
+            histogram.observe(x)
+        return
+    # observe() puts x in the first bucket whose bound is >= x: bisect_left; a NaN goes in none.
+    for at, n in Tally(bisect_left(bounds, x) for x in values if x == x).items():
+        buckets[at].inc(n)
+    total.inc(sum(values))
 
 
 def set_arm_weights(weights: dict[tuple[str, str], float]) -> None:

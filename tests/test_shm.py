@@ -130,8 +130,9 @@ def test_mappings_are_kept_for_reuse_and_let_go_when_their_file_goes(
     descriptor = {"segment": "reused", "shape": [2, V]}
 
     def same_as_npy(logits: np.ndarray) -> None:
-        assert answer(shm_pick(shm_server, descriptor, seed=5)) == answer(
-            npy_pick(shm_server, logits, {"seed": 5})
+        # One routing key: the client's route splits its traffic between two versions.
+        assert answer(shm_pick(shm_server, descriptor, seed=5, routing_key="k")) == answer(
+            npy_pick(shm_server, logits, {"seed": 5, "routing_key": "k"})
         )
 
     same_as_npy(first)

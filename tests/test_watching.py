@@ -233,3 +233,28 @@ def test_a_dead_workers_collapse_gauge_is_forgotten(tmp_path: Path) -> None:
     gone = scrape()
     assert gauge not in gone
     assert rows + 'version="3"} 3.0' in gone
+
+
+def test_batch_observation_equals_one_by_one() -> None:
+    # observe_all updates each bucket hit once; the exposition must be the one that
+    # prometheus_client's own observe() gives value by value (NaN, bounds and +Inf included).
+    from prometheus_client import CollectorRegistry, Histogram, generate_latest
+
+    from service.metrics import observe_all
+
+    values = [0.0, 1.0, 1.5, 2.0, 2.0, 7.5, 1e9, float("nan"), 3.25, 0.5, 2.0000001]
+    texts = []
+    for batch in (True, False):
+        registry = CollectorRegistry()
+        hist = Histogram("h", "h", ["p"], buckets=[0.5, 1, 2, 4, 8], registry=registry)
+        child = hist.labels("x")
+        if batch:
+            observe_all(child, values)
+        else:
+            for v in values:
+                child.observe(v)
+        lines = generate_latest(registry).decode().splitlines()
+        texts.append("\n".join(line for line in lines if "_created" not in line))
+    text = texts[0]
+    assert text == texts[1]
+    assert 'h_bucket{le="2.0",p="x"} 6.0' in text and 'h_count{p="x"} 10.0' in text

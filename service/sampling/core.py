@@ -21,7 +21,7 @@ import math
 import os
 import secrets
 from collections.abc import Callable, Sequence
-from concurrent.futures import ThreadPoolExecutor
+from concurrent.futures import ThreadPoolExecutor, wait
 from dataclasses import dataclass
 from types import ModuleType
 from typing import TYPE_CHECKING, Literal
@@ -578,7 +578,15 @@ def _in_parallel(work: Callable[[int, int], None], n: int, workers: int) -> None
         work(0, n)
         return
     edges = np.linspace(0, n, workers + 1).astype(int).tolist()
-    list(_pool(workers).map(lambda bounds: work(*bounds), itertools.pairwise(edges)))
+    parts = list(itertools.pairwise(edges))
+    # The calling thread takes the first part itself: one thread hand-off fewer per batch.
+    others = [_pool(workers - 1).submit(work, lo, hi) for lo, hi in parts[1:]]
+    try:
+        work(*parts[0])
+    finally:
+        wait(others)  # no part may outlive the call, even when this one raised
+    for future in others:
+        future.result()  # a part's own error
 
 
 _POOLS: dict[int, ThreadPoolExecutor] = {}

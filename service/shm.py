@@ -346,7 +346,7 @@ class Segment:
 
     def close(self) -> None:
         if self._mapping is not None:
-            self._mapping.close()
+            _close(self._mapping)  # a caller may still hold a view of a shared_logits block
             self._mapping = None
         if self._fd >= 0:
             os.close(self._fd)

@@ -169,3 +169,16 @@ def test_logits_written_in_place_equal_npy_picks(
 def test_shared_logits_need_a_shared_folder(served: Server) -> None:
     with Client(served.base_url, KEY) as ks, pytest.raises(ValueError, match="shm_dir"):
         ks.shared_logits(1, 10)
+
+
+def test_closing_a_block_whose_array_is_still_held(
+    served: Server, folders: tuple[Path, Path]
+) -> None:
+    # A caller may keep a reference to block.array; closing must still remove the segment.
+    shm_dir, sock = folders
+    with Client("http://keepset", KEY, uds=sock, shm_dir=shm_dir) as ks:
+        block = ks.shared_logits(2, 100)
+        held = block.array
+        block.close()
+        assert not list(shm_dir.iterdir())
+        del held

@@ -77,7 +77,9 @@ def test_symlink_swaps_under_traffic(tmp_path: Path) -> None:
             _swap(volume, name)
             shutil.rmtree(volume / old)  # the kubelet removes the previous folder at once
             old = name
-            time.sleep(0.4)
+            # Four polls per state: the admin endpoint reaches one worker only, the other
+            # follows by its file poll, and two polls once missed a state on a loaded CI machine.
+            time.sleep(0.8)
         time.sleep(1.0)  # a few polls on the final, broken, folder
         after = Counter(served)
         time.sleep(1.0)

@@ -150,3 +150,20 @@ def test_wide_vectors_follow_the_host_and_keep_an_operators_choice() -> None:
         check=True,
     ).stdout.strip()
     assert kept == host
+
+
+@pytest.mark.parametrize("threads", [1, 2])
+def test_large_batches_answer_the_in_process_pick(registry: Path, threads: int) -> None:
+    # A batch over a million logits runs in a worker thread with one sampling thread, and on
+    # the event loop thread plus the sampling pool with two: both give the in-process pick.
+    from service.npy import to_npy
+    from service.sampling import pick
+
+    logits = (np.random.default_rng(4).standard_normal((10, 120_000)) * 3).astype(np.float32)
+    chain = load_registry(registry).chain(("box-office", 1))  # what usher-desk is routed to
+    with in_process(registry, sampling_threads=threads) as client:
+        assert wait_ready(client) == 200
+        headers = {**auth("usher-desk"), "Content-Type": "application/x-npy"}
+        r = client.post("/v1/pick?seed=9", content=to_npy(logits), headers=headers)
+    assert r.status_code == 200, r.text
+    assert r.json()["tokens"] == pick(chain, logits, seed=9).tokens.tolist()

@@ -231,14 +231,24 @@ def top_positions(row: Any, block_max: Any, m: int) -> Any:
     found = positions_at_least(row, block_max, _block_floor(block_max, m))
     if found.size <= m:
         return found
-    values = row[found]
-    if found.size > 4 * m:  # a short row (every block gathered): cut to the m-th value first
-        kth = np.partition(values, found.size - m)[found.size - m]
-        found = found[values >= kth]  # ties at the m-th value stay, in position order
-        values = row[found]
-    # Stable sort of -value: among equal values the lower position (gathered first) comes first.
-    order = np.argsort(-values, kind="mergesort")[:m]
-    return np.sort(found[order])
+    return found[_largest(row[found], m)]
+
+
+@njit(**_JIT)
+def _largest(values: Any, m: int) -> Any:
+    """Mask of the ``m`` largest of ``values`` (m < size), ties at the m-th value to the lower
+    index: what a stable sort by decreasing value would put first, without sorting. One
+    selection finds the m-th value; everything above it is in, then equal ones in index order."""
+    kth = np.partition(values, values.size - m)[values.size - m]
+    keep = values > kth
+    need = m - np.count_nonzero(keep)
+    for i in range(values.size):
+        if need == 0:
+            break
+        if values[i] == kth:
+            keep[i] = True
+            need -= 1
+    return keep
 
 
 # Sub-block length inside a visited block: the compare over one is vectorised, and only the few
@@ -293,8 +303,8 @@ def _most_probable(ids: Any, w: Any, m: int) -> tuple[Any, Any]:
     """The ``m`` most probable (ties to the lower id), in id order."""
     if ids.size <= m:
         return ids, w
-    at = np.sort(np.argsort(-w, kind="mergesort")[:m])
-    return ids[at], w[at]
+    keep = _largest(w, m)
+    return ids[keep], w[keep]
 
 
 @njit(**_JIT)

@@ -41,8 +41,6 @@ from service.sampling.chain import (  # noqa: E402
 F32 = NDArray[np.float32]
 F64 = NDArray[np.float64]
 I64 = NDArray[np.int64]
-# codes, params, edit_from, edit_tokens, edit_kinds, edit_values: the kernel's form of stages
-Stages = tuple[I64, F64, I64, I64, I64, F64]
 
 _EDITS = ("repetition_penalty", "occurrence_penalty", "token_bias", "ban")
 _CODES = {
@@ -210,40 +208,45 @@ def _stack(packs: list[tuple[I64, F64]]) -> tuple[I64, F64]:
 def _pack(
     min_keep: int, prefix: tuple[Stage, ...], tail: tuple[Stage, ...], history: list[int]
 ) -> tuple[I64, F64]:
-    pre, post = _arrays(prefix, history), _arrays(tail, history)
+    # Plain lists and one array per kind: a penalty's edits are packed again for every step of
+    # a continuation, where a dozen small numpy arrays cost more than the ranking they feed.
+    pre, post = _lists(prefix, history), _lists(tail, history)
     first = tail[0]
-    head = [min_keep, _CODES[first.method], pre[0].size, pre[3].size, post[0].size, post[3].size]
-    int_parts = (pre[0], pre[2], pre[3], pre[4], post[0], post[2], post[3], post[4])
-    ints = np.concatenate((np.array(head, np.int64), *int_parts))
+    head = [min_keep, _CODES[first.method], len(pre[0]), len(pre[3]), len(post[0]), len(post[3])]
+    ints = head + pre[0] + pre[2] + pre[3] + pre[4] + post[0] + post[2] + post[3] + post[4]
     first_param = 0.0 if first.method == "greedy" else first.number
-    floats = np.concatenate([np.array([first_param]), pre[1], pre[5], post[1], post[5]])
-    return ints, floats
+    floats = [first_param, *pre[1], *pre[5], *post[1], *post[5]]
+    return np.array(ints, np.int64), np.array(floats, np.float64)
 
 
-def _arrays(stages: tuple[Stage, ...], history: list[int]) -> Stages:
-    """Stages in the kernel's form: edit stage j changes ``tokens[edit_from[j]:edit_from[j+1]]``
-    (the arrays form of ``batch.edits_for``)."""
-    per_stage = [_edits(s, history) if s.method in _EDITS else None for s in stages]
-    edits = [e for e in per_stage if e is not None]
-    edit_from = np.zeros(len(stages) + 1, np.int64)
-    np.cumsum([0 if e is None else e[0].size for e in per_stage], out=edit_from[1:])
-    params = [s.number if s.method in _NUMBERED else 0.0 for s in stages]
-    return (
-        np.array([_CODES[s.method] for s in stages], np.int64),
-        np.array(params, np.float64),
-        edit_from,
-        np.concatenate([e[0] for e in edits]) if edits else _NO_IDS,
-        np.concatenate([e[1] for e in edits]) if edits else _NO_IDS,
-        np.concatenate([e[2] for e in edits]) if edits else _NO_VALUES,
-    )
+StageLists = tuple[list[int], list[float], list[int], list[int], list[int], list[float]]
+
+
+def _lists(stages: tuple[Stage, ...], history: list[int]) -> StageLists:
+    """Stages in the kernel's form (codes, params, edit_from, edit tokens, kinds, values): edit
+    stage j changes ``tokens[edit_from[j]:edit_from[j+1]]`` (the arrays form of
+    ``batch.edits_for``)."""
+    codes, params, edit_from = [], [], [0]
+    tokens: list[int] = []
+    kinds: list[int] = []
+    values: list[float] = []
+    for stage in stages:
+        codes.append(_CODES[stage.method])
+        params.append(stage.number if stage.method in _NUMBERED else 0.0)
+        if stage.method in _EDITS:
+            t, k, v = _edits(stage, history)
+            tokens += t
+            kinds += k
+            values += v
+        edit_from.append(len(tokens))
+    return codes, params, edit_from, tokens, kinds, values
 
 
 _NUMBERED = ("temperature", "top_k", "top_p", "typical", "min_p", "epsilon", "eta")
-_NO_IDS = np.zeros(0, np.int64)
-_NO_VALUES = np.zeros(0, np.float64)
+Edits = tuple[list[int], list[int], list[float]]
 
 
-def _edits(stage: Stage, history: list[int]) -> tuple[I64, I64, F64]:
+def _edits(stage: Stage, history: list[int]) -> Edits:
     """(tokens ascending, kinds, values) of an edit stage. The values are the same floating-point
     operations as ``batch.edits_for``'s (counts are exact in float64)."""
     p = stage.param
@@ -251,31 +254,24 @@ def _edits(stage: Stage, history: list[int]) -> tuple[I64, I64, F64]:
     # np.unique's fixed overhead.
     if isinstance(p, RepetitionPenalty):
         recent = history if p.window is None else history[-p.window :]
-        tokens = np.array(sorted(set(recent)), np.int64)
-        return (
-            tokens,
-            np.full(tokens.size, kernel.PENALISE, np.int64),
-            np.full(tokens.size, p.factor),
-        )
+        tokens = sorted(set(recent))
+        return tokens, [kernel.PENALISE] * len(tokens), [p.factor] * len(tokens)
     if isinstance(p, OccurrencePenalty):
         recent = history if p.window is None else history[-p.window :]
         counts = sorted(Counter(recent).items())
-        tokens = np.array([t for t, _ in counts], np.int64)
-        values = np.array([-(p.per_use * n + p.present) for _, n in counts], np.float64)
-        return tokens, np.full(tokens.size, kernel.SHIFT, np.int64), values
+        values = [-(p.per_use * n + p.present) for _, n in counts]
+        return [t for t, _ in counts], [kernel.SHIFT] * len(counts), values
     return _static_edits(stage)
 
 
 @lru_cache(maxsize=1024)
-def _static_edits(stage: Stage) -> tuple[I64, I64, F64]:
-    """Bans and biases: the same for every row, made once per stage."""
+def _static_edits(stage: Stage) -> Edits:
+    """Bans and biases: the same for every row, made once per stage (callers only read it)."""
     if stage.method == "token_bias":
         pairs = [(int(t), float(d)) for t, d in stage.param]  # type: ignore[union-attr]
-        tokens = np.array([t for t, _ in pairs], np.int64)
-        values = np.array([d for _, d in pairs], np.float64)
-        return tokens, np.full(tokens.size, kernel.SHIFT, np.int64), values
-    tokens = np.array(stage.token_ids, np.int64)
-    return tokens, np.full(tokens.size, kernel.REMOVE, np.int64), np.zeros(tokens.size)
+        return [t for t, _ in pairs], [kernel.SHIFT] * len(pairs), [d for _, d in pairs]
+    tokens = [int(t) for t in stage.token_ids]
+    return tokens, [kernel.REMOVE] * len(tokens), [0.0] * len(tokens)
 
 
 _WARM_UP_CHAINS: tuple[list[dict[str, Any]], ...] = (

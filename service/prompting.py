@@ -83,7 +83,10 @@ class PromptRun:
             raise Cancelled
         step = len(self._picks)
         history = history[self._skip :]
-        out = pick(self.chain, row, self.seed, [history], first_stream=step, kernel=self.kernel)
+        # A chain that reads no history draws the same without it, and pick then need not
+        # check every id of it again at every step.
+        seen = [history] if self.chain.reads_history else None
+        out = pick(self.chain, row, self.seed, seen, first_stream=step, kernel=self.kernel)
         self._picks.append(out)
         if self.logits is not None:
             self.logits.append(row)

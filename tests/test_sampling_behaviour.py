@@ -229,3 +229,16 @@ def test_with_param_revalidates() -> None:
     with pytest.raises(ChainError, match="temperature"):
         chain.with_param(0, 0.0)
     assert parse_chain(chain.to_spec()) == chain
+
+
+def test_reads_history_only_with_a_penalty_in_the_chain_or_its_fallback() -> None:
+    plain = parse_chain([{"temperature": 0.7}, {"top_k": 5}])
+    penalised = parse_chain([{"repetition_penalty": {"factor": 1.2}}, {"top_k": 5}])
+    counted = parse_chain([{"occurrence_penalty": {"per_use": 0.5}}, {"greedy": True}])
+    assert not plain.reads_history
+    assert penalised.reads_history and counted.reads_history
+    assert plain.with_fallback(counted).reads_history
+    # Without a penalty, the history cannot change the draw.
+    x = np.random.default_rng(5).standard_normal((3, 400)).astype(np.float32)
+    with_history = pick(plain, x, seed=4, history=[[1, 2, 3]] * 3).tokens
+    np.testing.assert_array_equal(with_history, pick(plain, x, seed=4).tokens)

@@ -116,12 +116,20 @@ class Chain:
     def to_spec(self) -> list[dict[str, Any]]:
         return [s.to_spec() for s in self.stages]
 
+    @cached_property
+    def reads_history(self) -> bool:
+        """Whether any stage of the chain or its fallback reads the history (the penalties):
+        only then can the history change what is drawn."""
+        own = any(s.method in HISTORY_METHODS for s in self.stages)
+        return own or (self.fallback is not None and self.fallback.reads_history)
+
     @cached_property  # checked on every pick; a frozen chain's answer never changes
     def largest_token_id(self) -> int:
         """The largest id that ban or token_bias names (-1 if none); vocabularies must exceed it."""
         return max((i for s in self.stages for i in s.token_ids), default=-1)
 
 
+HISTORY_METHODS = ("repetition_penalty", "occurrence_penalty")
 # Stages whose whole parameter is one number, so a request may adjust it.
 SCALAR_METHODS = ("temperature", "top_k", "top_p", "typical", "min_p", "epsilon", "eta")
 TRUNCATION_METHODS = ("top_k", "top_p", "typical", "min_p", "epsilon", "eta", "greedy")

@@ -31,6 +31,7 @@ prefer_wide_vectors()
 
 from service.sampling import kernel  # noqa: E402
 from service.sampling.chain import (  # noqa: E402
+    HISTORY_METHODS,
     Chain,
     OccurrencePenalty,
     RepetitionPenalty,
@@ -55,7 +56,6 @@ _CODES = {
 } | dict.fromkeys(_EDITS, kernel.EDIT)
 # First truncation stages whose candidates a cut can bound without the whole distribution.
 _CUT_BY_RANK = ("top_k", "greedy", "min_p")
-_HISTORY_EDITS = ("repetition_penalty", "occurrence_penalty")
 
 
 # eq=False: a plan is hashed by identity (``plan_for`` makes one per chain) and holds arrays.
@@ -124,7 +124,7 @@ def _plan(chain: Chain) -> Plan | None:
         min_keep=chain.min_keep,
         prefix=prefix,
         tail=tail,
-        needs_history=any(s.method in _HISTORY_EDITS for s in chain.stages),
+        needs_history=any(s.method in HISTORY_METHODS for s in chain.stages),
         static=static,
         static_rows=(static[0][None, :], static[1][None, :]),
     )
@@ -173,7 +173,10 @@ def pick_rows(
     threads: the kernel releases the GIL)."""
     n = rows.shape[0]
     rows = _read_only(rows)
-    if plan.needs_history:
+    if plan.needs_history and n == 1:
+        one_ints, one_floats = packed(plan, histories[0])
+        ints, floats = one_ints[None, :], one_floats[None, :]
+    elif plan.needs_history:
         ints, floats = _stack([packed(plan, h) for h in histories])
     else:
         ints, floats = plan.static_rows

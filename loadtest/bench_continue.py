@@ -7,7 +7,8 @@ All in one run, on the bundled model with one onnxruntime thread everywhere:
 - **policy work alone**: ``pick`` on the recorded logits rows of a continuation, per token;
 - **in process**: :class:`service.prompting.PromptRun` (model + policy + detokenizer), no HTTP;
 - **keepset over HTTP**: a real ``keepset serve`` (one worker) on 127.0.0.1, one client sending
-  ``/v1/continue`` requests one after another, plain JSON answers.
+  ``/v1/continue`` requests one after another, plain JSON answers, and the same request
+  streamed (Server-Sent Events, every step read as it comes).
 
 The policies come from a private registry with two bench policies that never stop early (the end
 token is banned and there is no stop text), so every request produces exactly ``budget`` tokens:
@@ -139,6 +140,32 @@ def one_http_request(conn: http.client.HTTPConnection, name: str, budget: int, s
     return elapsed
 
 
+def one_streamed_request(
+    conn: http.client.HTTPConnection, name: str, budget: int, seed: int
+) -> float:
+    """Seconds for a streamed continuation: every step event read as it comes, to ``done``."""
+    headers = {"Authorization": f"Bearer {KEY}", "Content-Type": "application/json"}
+    body = json.dumps({"prompt": PROMPT, "seed": seed, "budget": budget, "stream": True})
+    started = time.perf_counter()
+    conn.request("POST", "/v1/continue", body=body, headers=headers)
+    response = conn.getresponse()
+    assert response.status == 200, response.read()
+    steps, event = 0, ""
+    while True:
+        line = response.readline()
+        assert line, "the stream ended before its done event"
+        if line.startswith(b"event: "):
+            event = line[7:].strip().decode()
+            steps += event == "step"
+        elif line.startswith(b"data: ") and event == "done":
+            done = json.loads(line[6:])
+            break
+    response.read()  # the end of the chunked body, so the connection can be reused
+    elapsed = time.perf_counter() - started
+    assert done["policy"] == name and steps == budget, (done, steps)
+    return elapsed
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--budget", type=int, default=128)
@@ -168,18 +195,22 @@ def main() -> None:
                 bare_loop(model, budget)
                 in_process(model, name, budget, 0)
                 one_http_request(conns[name], name, budget, 0)
+                one_streamed_request(conns[name], name, budget, 0)
             for repeat in range(repeats):
                 for name in CHAINS:
                     bare = bare_loop(model, budget)
                     local = in_process(model, name, budget, repeat)[0]
                     served = one_http_request(conns[name], name, budget, repeat)
+                    streamed = one_streamed_request(conns[name], name, budget, repeat)
                     got = samples[name]
                     for key, value in (
                         ("bare", bare),
                         ("local", local),
                         ("http", served),
+                        ("stream", streamed),
                         ("local_ratio", local / bare),
                         ("http_ratio", served / bare),
+                        ("stream_ratio", streamed / bare),
                     ):
                         got.setdefault(key, []).append(value)
             for conn in conns.values():
@@ -198,17 +229,22 @@ def main() -> None:
             "http_tokens_per_s": budget / median["http"],
             "in_process_slower_than_bare": median["local_ratio"] - 1,
             "http_slower_than_bare": median["http_ratio"] - 1,
+            "streamed_tokens_per_s": budget / median["stream"],
+            "streamed_slower_than_bare": median["stream_ratio"] - 1,
         }
     print(f"budget {budget} tokens, one client, median of {repeats} interleaved repeats")
     print(
         f"{'policy':<14}{'bare tok/s':>11}{'in-process':>11}{'HTTP':>7}"
-        f"{'in-process vs bare':>20}{'HTTP vs bare':>14}{'policy ms/token':>17}"
+        f"{'streamed':>9}{'in-process vs bare':>20}{'HTTP vs bare':>14}{'streamed vs bare':>18}"
+        f"{'policy ms/token':>17}"
     )
     for name, row in results["policies"].items():
         print(
             f"{name:<14}{row['bare_tokens_per_s']:>11.0f}{row['in_process_tokens_per_s']:>11.0f}"
-            f"{row['http_tokens_per_s']:>7.0f}{row['in_process_slower_than_bare'] * 100:>19.1f}%"
-            f"{row['http_slower_than_bare'] * 100:>13.1f}%{row['policy_ms_per_token']:>17.3f}"
+            f"{row['http_tokens_per_s']:>7.0f}{row['streamed_tokens_per_s']:>9.0f}"
+            f"{row['in_process_slower_than_bare'] * 100:>19.1f}%"
+            f"{row['http_slower_than_bare'] * 100:>13.1f}%"
+            f"{row['streamed_slower_than_bare'] * 100:>17.1f}%{row['policy_ms_per_token']:>17.3f}"
         )
     args.out.parent.mkdir(parents=True, exist_ok=True)
     args.out.write_text(json.dumps(results, indent=2) + "\n")

@@ -522,13 +522,25 @@ async def _event_stream(head: dict[str, Any], run: PromptRun) -> AsyncIterator[b
     producer = asyncio.ensure_future(run_in_threadpool(produce))
     done: dict[str, Any]
     try:
-        while True:
-            item = await made.get()
-            if item is None:
-                break
-            if isinstance(item, Exception):
-                raise item
-            yield _sse("step", item.as_dict())
+        ended = False
+        while not ended:
+            # Steps made while the last ones were being sent go out in one write.
+            items = [await made.get()]
+            while not made.empty():
+                items.append(made.get_nowait())
+            events, failure = [], None
+            for item in items:
+                if isinstance(item, Exception):
+                    failure = item
+                    break
+                if item is None:
+                    ended = True
+                    break
+                events.append(_sse("step", item.as_dict()))
+            if events:
+                yield b"".join(events)
+            if failure is not None:
+                raise failure
         done = {"text": run.text, "tokens": run.tokens, "finish": run.finish}
     except (InputError, ValueError) as exc:
         done = {"text": run.text, "tokens": run.tokens, "finish": "error", "detail": str(exc)}

@@ -26,6 +26,7 @@ import contextlib
 import functools
 import json
 import threading
+import urllib.parse
 from collections.abc import AsyncIterator, Iterator, Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
@@ -33,11 +34,13 @@ from typing import Any
 
 import httpx
 import numpy as np
+import orjson
 from numpy.typing import NDArray
 
 from service.dtypes import WireDtype, to_wire
 from service.npy import to_npy
 from service.shm import Segment
+from service.unix_posts import UnixPoster
 
 NPY_MEDIA = "application/x-npy"
 
@@ -265,6 +268,14 @@ def _pick_post(
         yield {"json": _shm_body(segment, logits, seed, routing_key, history, adjust, dtype)}
 
 
+def _plain_post(path: str, post: Mapping[str, Any]) -> tuple[str, bytes, str]:
+    """(target, body, content type) of the httpx ``post`` arguments ``_pick_post`` made."""
+    if "json" in post:
+        return path, orjson.dumps(post["json"]), "application/json"
+    query = urllib.parse.urlencode(post["params"])
+    return f"{path}?{query}" if query else path, post["content"], NPY_MEDIA
+
+
 class _Segments:
     """A client's shared-memory segments: one while picks come one after another, one more for
     each pick in flight at the same time. A segment whose request failed on the way is removed,
@@ -397,9 +408,28 @@ class Client(_Connection):
         adjust: Mapping[str, float] | None = None,
     ) -> PickReply:
         request = (logits, seed, routing_key, history, adjust)
+        # The answer is read after the block: an error answer must not discard the segment.
         with _pick_post(self._segments, self._dtype, *request) as post:
-            response = self._http.post("/v1/pick", **post)
-        return _reply(response)
+            if self._uds is None:
+                response = self._http.post("/v1/pick", **post)
+            else:
+                status, body = self._unix.post(*_plain_post("/v1/pick", post))
+        if self._uds is None:
+            return _reply(response)
+        if status != 200:
+            try:
+                problem = orjson.loads(body)
+            except orjson.JSONDecodeError:
+                problem = {"detail": body.decode(errors="replace")}
+            raise KeepsetError(status, problem)
+        return PickReply.from_json(orjson.loads(body))
+
+    @functools.cached_property
+    def _unix(self) -> UnixPoster:
+        """Picks over the Unix socket skip httpx (see ``unix_posts``); the rest use it."""
+        assert self._uds is not None
+        host = httpx.URL(self._options["base_url"]).host or "localhost"
+        return UnixPoster(self._uds, host, self._options["headers"], self._options["timeout"])
 
     def continue_prompt(
         self,
@@ -452,6 +482,8 @@ class Client(_Connection):
         """Close the connections and remove the client's segments."""
         if "_http" in self.__dict__:  # made on first use
             self._http.close()
+        if "_unix" in self.__dict__:
+            self._unix.close()
         if self._segments is not None:
             self._segments.close()
 

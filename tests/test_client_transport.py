@@ -182,3 +182,34 @@ def test_closing_a_block_whose_array_is_still_held(
         block.close()
         assert not list(shm_dir.iterdir())
         del held
+
+
+def test_unix_picks_survive_a_server_restart_and_report_failures_as_httpx_errors(
+    tmp_path: Path, registry: Path
+) -> None:
+    # Sync picks over the Unix socket skip httpx: a kept connection the server closed (here by
+    # restarting) is replaced before the next pick, nothing is sent twice, and failures come as
+    # the httpx errors the rest of the client raises.
+    import httpx
+
+    sock = tmp_path / "k.sock"
+    logits = batch(2, 500)
+    ks = Client("http://keepset", KEY, uds=sock, timeout=10)
+    first = start_server(registry, workers=1, uds=sock)
+    try:
+        before = same(ks.pick(logits, seed=3, routing_key="r"))
+    finally:
+        stop_server(first)
+    second = start_server(registry, workers=1, uds=sock)
+    try:
+        # The connection kept from the first server is dead; the pick goes on a new one.
+        assert same(ks.pick(logits, seed=3, routing_key="r")) == before
+        with pytest.raises(KeepsetError) as refused:
+            ks.pick(np.full((1, 10), -np.inf, np.float32))
+        assert refused.value.status == 422 and refused.value.problem["status"] == 422
+        assert same(ks.pick(logits, seed=3, routing_key="r")) == before
+    finally:
+        stop_server(second)
+    with pytest.raises(httpx.ConnectError):
+        ks.pick(logits, seed=3, routing_key="r")  # nothing listens now
+    ks.close()

@@ -258,3 +258,15 @@ def test_batch_observation_equals_one_by_one() -> None:
     text = texts[0]
     assert text == texts[1]
     assert 'h_bucket{le="2.0",p="x"} 6.0' in text and 'h_count{p="x"} 10.0' in text
+
+
+def test_window_median_is_numpys() -> None:
+    # The watch's median of a window (odd and even counts, repeats) against numpy's.
+    from collections import deque
+
+    from service.watch import _median
+
+    rng = np.random.default_rng(8)
+    for n in (1, 2, 3, 10, 199, 200):
+        values = deque(int(v) for v in rng.integers(0, 60, n))
+        assert _median(values) == float(np.median(list(values)))

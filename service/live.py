@@ -164,13 +164,14 @@ async def poll_registry(live: Live) -> None:
     seen_keys = keys_fingerprint(live.settings.keys)
     while True:
         await asyncio.sleep(interval)
+        # On the loop thread: a few dozen stat calls take a fraction of a millisecond, while in
+        # a worker thread each call had to win the GIL back from a loop busy with requests, and
+        # under load one poll took over a second (a worker then missed registry updates).
         try:
-            current = await run_in_threadpool(
-                RegistrySnapshot.fingerprint_of, live.settings.policies
-            )
+            current = RegistrySnapshot.fingerprint_of(live.settings.policies)
         except OSError:
             continue
-        current_keys = await run_in_threadpool(keys_fingerprint, live.settings.keys)
+        current_keys = keys_fingerprint(live.settings.keys)
         if current != seen:
             seen, seen_keys = current, current_keys
             reload_now(live, "file-change")  # the keys too

@@ -77,9 +77,7 @@ def test_symlink_swaps_under_traffic(tmp_path: Path) -> None:
             _swap(volume, name)
             shutil.rmtree(volume / old)  # the kubelet removes the previous folder at once
             old = name
-            # Four polls per state: the workers follow the swaps by their file poll, and two
-            # polls per state once let a worker miss one on a loaded CI machine.
-            time.sleep(0.8)
+            time.sleep(0.4)
         time.sleep(1.0)  # a few polls on the final, broken, folder
         after = Counter(served)
         time.sleep(1.0)

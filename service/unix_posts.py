@@ -38,8 +38,10 @@ class _UnixConnection(http.client.HTTPConnection):
         """True when the server has closed (or written unasked to) the kept connection."""
         if self.sock is None:
             return False
-        readable, _, _ = select.select([self.sock], [], [], 0)
-        return bool(readable)
+        # poll, not select: select refuses descriptors above 1023, common in a busy server.
+        poller = select.poll()
+        poller.register(self.sock, select.POLLIN)
+        return bool(poller.poll(0))
 
 
 class UnixPoster:

@@ -213,3 +213,25 @@ def test_unix_picks_survive_a_server_restart_and_report_failures_as_httpx_errors
     with pytest.raises(httpx.ConnectError):
         ks.pick(logits, seed=3, routing_key="r")  # nothing listens now
     ks.close()
+
+
+def test_unix_picks_with_descriptors_above_1023(served: Server, folders: tuple[Path, Path]) -> None:
+    # A busy caller holds many files; the kept connection's check must not be limited to
+    # descriptors below 1024 (select's limit).
+    import os
+    import resource
+
+    _, sock = folders
+    soft, hard = resource.getrlimit(resource.RLIMIT_NOFILE)
+    if hard != resource.RLIM_INFINITY and hard < 1200:
+        pytest.skip(f"the hard limit on open files is {hard}")
+    resource.setrlimit(resource.RLIMIT_NOFILE, (max(soft, 1200), hard))
+    spare = [os.open(os.devnull, os.O_RDONLY) for _ in range(1100)]
+    try:
+        with Client("http://keepset", KEY, uds=sock) as ks:
+            first = same(ks.pick(batch(1, 300), seed=2, routing_key="fd"))
+            assert same(ks.pick(batch(1, 300), seed=2, routing_key="fd")) == first
+    finally:
+        for fd in spare:
+            os.close(fd)
+        resource.setrlimit(resource.RLIMIT_NOFILE, (soft, hard))

@@ -174,7 +174,12 @@ async def poll_registry(live: Live) -> None:
         current_keys = keys_fingerprint(live.settings.keys)
         if current != seen:
             seen, seen_keys = current, current_keys
-            reload_now(live, "file-change")  # the keys too
+            try:
+                reload_now(live, "file-change")  # the keys too
+            except Exception:
+                # The poll must outlive any one bad reload, or this worker never reloads again.
+                log.exception("registry reload failed; keeping the last good, polling on")
+                seen = ""  # try again at the next poll
         elif current_keys != seen_keys:
             seen_keys = current_keys
             if reload_keys(live) is None:

@@ -216,7 +216,10 @@ def readable_root(root: Path) -> Path:
 
 def load_registry(root: Path) -> RegistrySnapshot:
     root = Path(root)
-    fingerprint = RegistrySnapshot.fingerprint_of(root)
+    try:
+        fingerprint = RegistrySnapshot.fingerprint_of(root)
+    except OSError:  # a file that vanished mid-walk: the next poll sees the folder changed
+        fingerprint = ""
     if not root.is_dir():
         refusal = Refusal(str(root), "the registry folder does not exist")
         return RegistrySnapshot(root, {}, {}, {}, (), (refusal,), fingerprint)

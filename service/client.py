@@ -324,11 +324,16 @@ def _continue_body(
 
 def _check(response: httpx.Response, expected: int = 200) -> None:
     if response.status_code != expected:
-        try:
-            problem = response.json()
-        except ValueError:
-            problem = {"detail": response.text}
-        raise KeepsetError(response.status_code, problem)
+        raise _error(response.status_code, response.content)
+
+
+def _error(status: int, body: bytes) -> KeepsetError:
+    """The error for an answer with ``status``: its problem document, or its text in one."""
+    try:
+        problem = orjson.loads(body)
+    except orjson.JSONDecodeError:
+        problem = {"detail": body.decode(errors="replace")}
+    return KeepsetError(status, problem)
 
 
 def _reply(response: httpx.Response) -> PickReply:
@@ -417,11 +422,7 @@ class Client(_Connection):
         if self._uds is None:
             return _reply(response)
         if status != 200:
-            try:
-                problem = orjson.loads(body)
-            except orjson.JSONDecodeError:
-                problem = {"detail": body.decode(errors="replace")}
-            raise KeepsetError(status, problem)
+            raise _error(status, body)
         return PickReply.from_json(orjson.loads(body))
 
     @functools.cached_property

@@ -87,7 +87,8 @@ def cases(draw: Any) -> tuple[list[dict[str, Any]], int, np.ndarray, list[list[i
         x[:, rng.integers(0, vocab)] = 0.0  # keep every row with one finite entry
     stages = [_stage(draw, vocab) for _ in range(draw(st.integers(1, 4)))]
     min_keep = draw(st.sampled_from([1, 1, 2, 3]))
-    history = [list(rng.integers(0, vocab, draw(st.integers(0, 6)))) for _ in range(rows)]
+    # Up to 12 ids: longer than most windows drawn above, so windows do cut the history.
+    history = [list(rng.integers(0, vocab, draw(st.integers(0, 12)))) for _ in range(rows)]
     return stages, min_keep, x.astype(np.float32), history
 
 

@@ -1,12 +1,13 @@
 """The compiled path of ``pick``: a chain as the arrays the kernel reads, and rows decided by it.
 
-``plan_for`` packs a chain into two arrays once (stage codes and numbers, edits flattened;
-edits that read the history are packed per row). ``pick_rows`` takes a batch through the
-kernel (``kernel.pick_rows``: per row the fused pass, the lazy prefix and its cut, the
-remaining stages, the draw) and ``decide`` one row, with its kept set. A row the kernel does
-not decide (invalid entries, nothing left) comes back with its status, and ``core`` decides it
-on the numpy path; ``plan_for`` returns None for chains the kernel does not cut (a first
-truncation that needs the whole distribution: top_p, typical, epsilon, eta; or none at all).
+``plan_for`` packs a chain into two arrays once (stage codes and numbers, edits flattened; a
+penalty as a description the kernel applies to each row's history). ``pick_rows`` takes a
+batch through the kernel (``kernel.pick_rows``: per row the fused pass, the lazy prefix and
+its cut, the remaining stages, the draw) and ``decide`` one row, with its kept set. A row the
+kernel does not decide (invalid entries, nothing left) comes back with its status, and
+``core`` decides it on the numpy path; ``plan_for`` returns None for chains the kernel does
+not cut (a first truncation that needs the whole distribution: top_p, typical, epsilon, eta;
+or none at all).
 
 Importing this module imports numba; ``core`` treats an ImportError as "no compiled kernel".
 """
@@ -14,10 +15,8 @@ Importing this module imports numba; ``core`` treats an ImportError as "no compi
 from __future__ import annotations
 
 import weakref
-from collections import Counter
 from collections.abc import Callable
 from dataclasses import dataclass
-from functools import lru_cache
 from typing import Any
 
 import numpy as np
@@ -63,12 +62,11 @@ _CUT_BY_RANK = ("top_k", "greedy", "min_p")
 class Plan:
     """What the kernel needs of a chain, made once per chain."""
 
-    min_keep: int  # not the chain itself: the plan table must not keep chains alive
-    prefix: tuple[Stage, ...]  # temperatures and edits before the first truncation
-    tail: tuple[Stage, ...]  # the first truncation (top_k, greedy or min_p) and what follows
-    needs_history: bool
-    static: tuple[I64, F64]  # the packed chain when no stage reads the history
-    static_rows: tuple[I64, F64]  # the same as one-row 2-D views, the form pick_rows reads
+    ints: I64  # the packed chain, as one-row 2-D arrays (the form pick_rows reads)
+    floats: F64
+    # How much of a history the penalties read: 0 (none read it), the largest window, or
+    # None (one reads the whole history).
+    history_tail: int | None
 
 
 @dataclass(frozen=True)
@@ -115,37 +113,50 @@ _PLANS: dict[int, tuple[weakref.ref[Chain], Plan | None]] = {}
 def _plan(chain: Chain) -> Plan | None:
     start = next((i for i, s in enumerate(chain.stages) if s.method in _CUT_BY_RANK), None)
     if start is None or any(
-        _CODES[s.method] not in (kernel.TEMPERATURE, kernel.EDIT) for s in chain.stages[:start]
+        _CODES[s.method] not in (kernel.TEMPERATURE, kernel.EDIT, kernel.HISTORY_EDIT)
+        for s in chain.stages[:start]
     ):
         return None
-    prefix, tail = chain.stages[:start], chain.stages[start:]
-    static = _pack(chain.min_keep, prefix, tail, [])
-    return Plan(
-        min_keep=chain.min_keep,
-        prefix=prefix,
-        tail=tail,
-        needs_history=any(s.method in HISTORY_METHODS for s in chain.stages),
-        static=static,
-        static_rows=(static[0][None, :], static[1][None, :]),
-    )
+    ints, floats = _pack(chain.min_keep, chain.stages[:start], chain.stages[start:])
+    windows = [_window(s) for s in chain.stages if s.method in HISTORY_METHODS]
+    tail = 0 if not windows else None if None in windows else max(w for w in windows if w)
+    return Plan(ints[None, :], floats[None, :], tail)
 
 
-def packed(plan: Plan, history: list[int]) -> tuple[I64, F64]:
-    """The chain as the kernel reads it (see ``kernel``), for one row's history."""
-    if not plan.needs_history:
-        return plan.static
-    return _pack(plan.min_keep, plan.prefix, plan.tail, history)
+def _window(stage: Stage) -> int | None:
+    assert isinstance(stage.param, RepetitionPenalty | OccurrencePenalty)
+    return stage.param.window
+
+
+def history_arrays(plan: Plan, histories: list[list[int]]) -> tuple[I64, I64]:
+    """The rows' histories as the kernel reads them: ``[B, L]`` ids, each row's from the left,
+    and the ``[B]`` lengths; only the part the penalties read (one empty row when none do)."""
+    keep = plan.history_tail
+    if keep == 0:
+        return _NO_HISTORY
+    recent = histories if keep is None else [h[-keep:] for h in histories]
+    if len(recent) == 1:
+        ids = np.array(recent[0], np.int64)
+        return ids[None, :], np.array([ids.size], np.int64)
+    lengths = np.array([len(h) for h in recent], np.int64)
+    ids = np.zeros((len(recent), int(lengths.max(initial=0))), np.int64)
+    for b, h in enumerate(recent):
+        ids[b, : len(h)] = h
+    return ids, lengths
+
+
+_NO_HISTORY = (np.zeros((1, 0), np.int64), np.zeros(1, np.int64))
 
 
 def decide(plan: Plan, raw: F32, history: list[int], u: float) -> Decided | None:
     """One row: its kept set and draw, or None when the kernel does not decide it."""
-    ints, floats = packed(plan, history)
-    status, ids, probs, token, prob, kept_mass, entropy, logprob = kernel.decide_row(
-        _read_only(raw), ints, floats, u
+    ids, lengths = history_arrays(plan, [history])
+    status, kept, probs, token, prob, kept_mass, entropy, logprob = kernel.decide_row(
+        _read_only(raw), plan.ints[0], plan.floats[0], ids[0, : lengths[0]], u
     )
     if status != kernel.DECIDED:
         return None
-    return Decided(ids, probs, int(token), prob, kept_mass, entropy, logprob)
+    return Decided(kept, probs, int(token), prob, kept_mass, entropy, logprob)
 
 
 def _read_only(rows: F32) -> F32:
@@ -173,47 +184,27 @@ def pick_rows(
     threads: the kernel releases the GIL)."""
     n = rows.shape[0]
     rows = _read_only(rows)
-    if plan.needs_history and n == 1:
-        one_ints, one_floats = packed(plan, histories[0])
-        ints, floats = one_ints[None, :], one_floats[None, :]
-    elif plan.needs_history:
-        ints, floats = _stack([packed(plan, h) for h in histories])
-    else:
-        ints, floats = plan.static_rows
+    ints, floats = plan.ints, plan.floats
+    past, lengths = history_arrays(plan, histories)
     # Two arrays for the kernel to fill (fewer arguments to type on every call), seen as columns.
     out_ints, out_floats = np.empty((3, n), np.int64), np.empty((4, n))
     seed_stream = np.array((seed, first_stream), np.uint64)
+    args = (ints, floats, past, lengths, seed_stream, out_ints, out_floats)
 
     if n == 1:  # the common single-step case: no closure, no thread hand-off
-        count = kernel.pick_rows(rows, 0, 1, ints, floats, seed_stream, out_ints, out_floats)
-        return Picked(count, out_ints, out_floats)
+        return Picked(kernel.pick_rows(rows, 0, 1, *args), out_ints, out_floats)
 
     undecided: list[int] = []
 
     def work(lo: int, hi: int) -> None:
-        count = kernel.pick_rows(rows, lo, hi, ints, floats, seed_stream, out_ints, out_floats)
-        undecided.append(count)
+        undecided.append(kernel.pick_rows(rows, lo, hi, *args))
 
     parts(work, n)
     return Picked(sum(undecided), out_ints, out_floats)
 
 
-def _stack(packs: list[tuple[I64, F64]]) -> tuple[I64, F64]:
-    """Rows of different lengths, zero-padded: the counts at the head say what is used."""
-    ints = np.zeros((len(packs), max(p[0].size for p in packs)), np.int64)
-    floats = np.zeros((len(packs), max(p[1].size for p in packs)), np.float64)
-    for b, (i, f) in enumerate(packs):
-        ints[b, : i.size] = i
-        floats[b, : f.size] = f
-    return ints, floats
-
-
-def _pack(
-    min_keep: int, prefix: tuple[Stage, ...], tail: tuple[Stage, ...], history: list[int]
-) -> tuple[I64, F64]:
-    # Plain lists and one array per kind: a penalty's edits are packed again for every step of
-    # a continuation, where a dozen small numpy arrays cost more than the ranking they feed.
-    pre, post = _lists(prefix, history), _lists(tail, history)
+def _pack(min_keep: int, prefix: tuple[Stage, ...], tail: tuple[Stage, ...]) -> tuple[I64, F64]:
+    pre, post = _lists(prefix), _lists(tail)
     first = tail[0]
     head = [min_keep, _CODES[first.method], len(pre[0]), len(pre[3]), len(post[0]), len(post[3])]
     ints = head + pre[0] + pre[2] + pre[3] + pre[4] + post[0] + post[2] + post[3] + post[4]
@@ -225,51 +216,41 @@ def _pack(
 StageLists = tuple[list[int], list[float], list[int], list[int], list[int], list[float]]
 
 
-def _lists(stages: tuple[Stage, ...], history: list[int]) -> StageLists:
+def _lists(stages: tuple[Stage, ...]) -> StageLists:
     """Stages in the kernel's form (codes, params, edit_from, edit tokens, kinds, values): edit
-    stage j changes ``tokens[edit_from[j]:edit_from[j+1]]`` (the arrays form of
-    ``batch.edits_for``)."""
+    stage j changes ``tokens[edit_from[j]:edit_from[j+1]]``, or is described there (a
+    HISTORY_EDIT, see ``kernel``)."""
     codes, params, edit_from = [], [], [0]
     tokens: list[int] = []
     kinds: list[int] = []
     values: list[float] = []
     for stage in stages:
-        codes.append(_CODES[stage.method])
-        params.append(stage.number if stage.method in _NUMBERED else 0.0)
-        if stage.method in _EDITS:
-            t, k, v = _edits(stage, history)
-            tokens += t
-            kinds += k
-            values += v
+        p = stage.param
+        number = stage.number if stage.method in _NUMBERED else 0.0
+        if isinstance(p, RepetitionPenalty | OccurrencePenalty):
+            tally = isinstance(p, OccurrencePenalty)
+            codes.append(kernel.HISTORY_EDIT)
+            params.append(p.present if isinstance(p, OccurrencePenalty) else 0.0)
+            tokens.append(-1 if p.window is None else p.window)
+            kinds.append(kernel.TALLY if tally else kernel.PENALISE)
+            values.append(p.per_use if isinstance(p, OccurrencePenalty) else p.factor)
+        else:
+            codes.append(_CODES[stage.method])
+            params.append(number)
+            if stage.method in _EDITS:
+                t, k, v = _static_edits(stage)
+                tokens += t
+                kinds += k
+                values += v
         edit_from.append(len(tokens))
     return codes, params, edit_from, tokens, kinds, values
 
 
 _NUMBERED = ("temperature", "top_k", "top_p", "typical", "min_p", "epsilon", "eta")
-Edits = tuple[list[int], list[int], list[float]]
 
 
-def _edits(stage: Stage, history: list[int]) -> Edits:
-    """(tokens ascending, kinds, values) of an edit stage. The values are the same floating-point
-    operations as ``batch.edits_for``'s (counts are exact in float64)."""
-    p = stage.param
-    # Python sets and counters: for the few dozen ids of a window they cost a fraction of
-    # np.unique's fixed overhead.
-    if isinstance(p, RepetitionPenalty):
-        recent = history if p.window is None else history[-p.window :]
-        tokens = sorted(set(recent))
-        return tokens, [kernel.PENALISE] * len(tokens), [p.factor] * len(tokens)
-    if isinstance(p, OccurrencePenalty):
-        recent = history if p.window is None else history[-p.window :]
-        counts = sorted(Counter(recent).items())
-        values = [-(p.per_use * n + p.present) for _, n in counts]
-        return [t for t, _ in counts], [kernel.SHIFT] * len(counts), values
-    return _static_edits(stage)
-
-
-@lru_cache(maxsize=1024)
-def _static_edits(stage: Stage) -> Edits:
-    """Bans and biases: the same for every row, made once per stage (callers only read it)."""
+def _static_edits(stage: Stage) -> tuple[list[int], list[int], list[float]]:
+    """Bans and biases: the same for every row."""
     if stage.method == "token_bias":
         pairs = [(int(t), float(d)) for t, d in stage.param]  # type: ignore[union-attr]
         return [t for t, _ in pairs], [kernel.SHIFT] * len(pairs), [d for _, d in pairs]
@@ -294,3 +275,4 @@ def warm_up() -> None:
         assert plan is not None
         decide(plan, raw, [1, 2, 3], 0.5)
         pick_rows(plan, raw[None, :], [[1]], 7, 0, lambda work, n: work(0, n))
+        pick_rows(plan, np.stack([raw, raw]), [[1], [2, 2]], 7, 0, lambda work, n: work(0, n))

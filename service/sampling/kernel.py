@@ -44,11 +44,17 @@ MIN_P = 5
 EPSILON = 6
 ETA = 7
 GREEDY = 8
+# An edit stage whose edits come from the row's history (repetition and occurrence penalties):
+# its one entry in the edit arrays describes it (token: the window, or -1 for the whole
+# history; kind: PENALISE or TALLY; value: the factor or the per-use amount), and its stage
+# parameter is the occurrence penalty's one-off amount.
+HISTORY_EDIT = 9
 
 # Edit kinds: how one token's working logit changes.
 PENALISE = 0  # repetition penalty: v / f if v > 0 else v * f
 SHIFT = 1  # v + delta
 REMOVE = 2  # -inf
+TALLY = 3  # only in a HISTORY_EDIT description: v - (per_use * count + present)
 
 # Block length of the block maxima; a chunk is several blocks and stays in L1 while it is used.
 BLOCK = 256
@@ -186,6 +192,7 @@ def scan(row: Any, block_max: Any) -> tuple[float, float, float]:
 # --- cutting a row to candidates ------------------------------------------------------------------
 
 
+# Histogram bins of the block maxima (a few hundred to a thousand of them).
 _BINS = 64
 
 
@@ -220,18 +227,67 @@ def _block_floor(block_max: Any, m: int) -> Any:
     return np.float32(floor)
 
 
+@njit(fastmath=_VECTOR_MATH, **_JIT)
+def _count_at_least(values: Any, floor: Any) -> int:
+    count = 0
+    for i in range(values.size):
+        count += values[i] >= floor
+    return count
+
+
+@njit(**_JIT)
+def _count_floor(values: Any, top: Any, m: int) -> Any:
+    """A float32 value that at least ``m`` of ``values`` reach and not many more (about 2m),
+    found by counting, a vectorised pass each: steps down from ``top`` (the largest value)
+    that double until m are reached, then halving between the last two steps. -inf when
+    fewer than m are finite. The counts are the very comparisons ``positions_at_least``
+    makes, so the bound is exact."""
+    if not top > -np.inf:
+        return np.float32(-np.inf)
+    above, step = float(top), 1.0
+    below = np.float32(above - step)
+    count = _count_at_least(values, below)
+    while count < m:
+        if step > 1e30:  # fewer than m finite values
+            return np.float32(-np.inf)
+        above, step = float(below), step * 2.0
+        below = np.float32(float(top) - step)
+        count = _count_at_least(values, below)
+    for _ in range(12):
+        if count <= 2 * m + 16:
+            break
+        middle = np.float32(0.5 * (float(below) + above))
+        if middle <= below or middle >= above:
+            break  # no float32 between them: ties at the floor
+        more = _count_at_least(values, middle)
+        if more >= m:
+            below, count = middle, more
+        else:
+            above = float(middle)
+    return below
+
+
 @njit(**_JIT)
 def top_positions(row: Any, block_max: Any, m: int) -> Any:
     """Positions (ascending) of the ``m`` largest finite entries, ties to the lower position.
 
     Any value t that at least m block maxima reach is a lower bound of the m-th largest entry
     (m blocks hold an entry >= t), so only blocks whose maximum reaches t can hold the answer:
-    with t near the m-th largest block maximum, about m blocks.
+    with t near the m-th largest block maximum, about m blocks. When there are no more blocks
+    than m (a small vocabulary, or a large m), or the blocks found still hold many more than m
+    entries (a flat row), counting the entries themselves gives the bound instead.
     """
-    found = positions_at_least(row, block_max, _block_floor(block_max, m))
+    floor = _block_floor(block_max, m)
+    if floor == -np.inf:
+        floor = _count_floor(row, block_max.max(), m)
+    found = positions_at_least(row, block_max, floor)
     if found.size <= m:
         return found
-    return found[_largest(row[found], m)]
+    values = row[found]
+    if found.size > 4 * m + 64:
+        near = values >= _count_floor(values, values.max(), m)
+        found, values = found[near], values[near]
+    return found[_largest(values, m)]
 
 
 @njit(**_JIT)
@@ -239,7 +295,7 @@ def _largest(values: Any, m: int) -> Any:
     """Mask of the ``m`` largest of ``values`` (m < size), ties at the m-th value to the lower
     index: what a stable sort by decreasing value would put first, without sorting. One
     selection finds the m-th value; everything above it is in, then equal ones in index order."""
-    kth = np.partition(values, values.size - m)[values.size - m]
+    kth = _kth_smallest(values, values.size - m)
     keep = values > kth
     need = m - np.count_nonzero(keep)
     for i in range(values.size):
@@ -249,6 +305,55 @@ def _largest(values: Any, m: int) -> Any:
             keep[i] = True
             need -= 1
     return keep
+
+
+@njit(**_JIT)
+def _kth_smallest(values: Any, k: int) -> float:
+    """The ``k``-th smallest (0-based) of finite ``values``, by quickselect in float64 (exact
+    for float32 input). numba's own ``np.partition`` branches on every comparison and takes
+    five times as long as numpy's; here each partition pass is branch-free (``_split``).
+    Entries equal to the pivot are set apart in a second pass, so repeated values cost no
+    extra rounds; past a depth of about 2 log2(n) the rest is sorted with a merge sort, so no
+    input, however built, makes the selection quadratic."""
+    src = values.astype(np.float64)
+    dst = np.empty_like(src)
+    lo, hi = 0, src.size  # the answer is in src[lo:hi]
+    depth = 2 * int(math.log2(src.size + 1)) + 4
+    while hi - lo > 1:
+        if depth == 0:
+            part = src[lo:hi]
+            return float(part[np.argsort(part, kind="mergesort")[k - lo]])
+        depth -= 1
+        x, y, z = src[lo], src[(lo + hi) >> 1], src[hi - 1]
+        pivot = max(min(x, y), min(max(x, y), z))  # the median of three
+        below = _split(src, dst, lo, hi, pivot, False)
+        src, dst = dst, src
+        if k < below:
+            hi = below
+            continue
+        not_above = _split(src, dst, below, hi, pivot, True)
+        src, dst = dst, src
+        if k < not_above:
+            return float(pivot)
+        lo = not_above
+    return float(src[k])
+
+
+@njit(inline="always")
+def _split(src: Any, dst: Any, lo: int, hi: int, pivot: float, equal_too: bool) -> int:
+    """Copies ``src[lo:hi]`` to ``dst[lo:hi]``, the entries below ``pivot`` (or, with
+    ``equal_too``, not above it) first and the rest from the back; returns where the rest
+    starts. Every entry is written at both ends and the comparison only moves the ends (a
+    slot written in vain is written again later), so nothing branches on the data."""
+    front, back = lo, hi - 1
+    for i in range(lo, hi):
+        v = src[i]
+        dst[front] = v
+        dst[back] = v
+        first = (v <= pivot) if equal_too else (v < pivot)
+        front += first
+        back -= 1 - first
+    return front
 
 
 # Sub-block length inside a visited block: the compare over one is vectorised, and only the few
@@ -273,10 +378,9 @@ def positions_at_least(row: Any, block_max: Any, floor: Any) -> Any:
                 hits += sub[i] >= floor
             if hits == 0:
                 continue
-            for i in range(sub.size):
-                if sub[i] >= floor:
-                    found[count] = lo + i
-                    count += 1
+            for i in range(sub.size):  # written always, kept by the count: no branch to miss
+                found[count] = lo + i
+                count += sub[i] >= floor
     return found[:count]
 
 
@@ -365,10 +469,12 @@ def apply_stages(
     edit_tokens: Any,
     edit_kinds: Any,
     edit_values: Any,
+    history: Any,
     min_keep: int,
 ) -> tuple[Any, Any]:
     """The stages ``codes``/``params`` on candidates (ids ascending, float64 working logits).
-    Edit stage j changes ``edit_tokens[edit_from[j]:edit_from[j + 1]]``."""
+    Edit stage j changes ``edit_tokens[edit_from[j]:edit_from[j + 1]]``, or for a
+    HISTORY_EDIT the tokens of ``history`` it describes."""
     for j in range(codes.size):
         if ids.size == 0:
             break
@@ -376,9 +482,11 @@ def apply_stages(
         x = params[j]
         if code == TEMPERATURE:
             w = w / x
-        elif code == EDIT:
-            lo, hi = edit_from[j], edit_from[j + 1]
-            ids, w = _apply_edits(ids, w, edit_tokens[lo:hi], edit_kinds[lo:hi], edit_values[lo:hi])
+        elif code in (EDIT, HISTORY_EDIT):
+            tokens, kinds, values = _stage_edits(
+                j, codes, params, edit_from, edit_tokens, edit_kinds, edit_values, history
+            )
+            ids, w = _apply_edits(ids, w, tokens, kinds, values)
         elif code == TOP_K:
             ids, w = _most_probable(ids, w, max(int(x), min_keep))
         elif code == GREEDY:
@@ -408,6 +516,53 @@ def apply_stages(
 
 
 @njit(**_JIT)
+def _stage_edits(
+    j: int,
+    codes: Any,
+    params: Any,
+    edit_from: Any,
+    edit_tokens: Any,
+    edit_kinds: Any,
+    edit_values: Any,
+    history: Any,
+) -> tuple[Any, Any, Any]:
+    """(tokens ascending, kinds, values) of edit stage ``j``: its packed edits, or for a
+    HISTORY_EDIT those made from ``history`` (the arrays form of ``batch.edits_for``, with the
+    same floating-point operations: counts are exact in float64)."""
+    lo, hi = edit_from[j], edit_from[j + 1]
+    if codes[j] != HISTORY_EDIT:
+        return edit_tokens[lo:hi], edit_kinds[lo:hi], edit_values[lo:hi]
+    window = edit_tokens[lo]
+    recent = history if window < 0 else history[max(0, history.size - window) :]
+    tokens, counts = _tally(recent)
+    if edit_kinds[lo] == PENALISE:
+        factors = np.full(tokens.size, edit_values[lo])
+        return tokens, np.full(tokens.size, PENALISE, np.int64), factors
+    per_use, present = edit_values[lo], params[j]
+    shifts = np.empty(tokens.size)
+    for i in range(tokens.size):
+        shifts[i] = -(per_use * counts[i] + present)
+    return tokens, np.full(tokens.size, SHIFT, np.int64), shifts
+
+
+@njit(**_JIT)
+def _tally(ids: Any) -> tuple[Any, Any]:
+    """The distinct ``ids`` ascending, and how often each occurs."""
+    ordered = np.sort(ids)
+    tokens = np.empty(ordered.size, np.int64)
+    counts = np.empty(ordered.size, np.int64)
+    n = 0
+    for i in range(ordered.size):
+        if n > 0 and tokens[n - 1] == ordered[i]:
+            counts[n - 1] += 1
+        else:
+            tokens[n] = ordered[i]
+            counts[n] = 1
+            n += 1
+    return tokens[:n], counts[:n]
+
+
+@njit(**_JIT)
 def _edited(v: float, kind: int, value: float) -> float:
     if kind == PENALISE:
         return v / value if v > 0 else v * value
@@ -430,8 +585,42 @@ def _working(raw: Any, ids: Any, temp: float, edited: Any, values: Any) -> Any:
 
 
 @njit(**_JIT)
+def _ascending(a: Any) -> bool:
+    for i in range(1, a.size):  # noqa: SIM110 (a loop numba compiles; a generator it may not)
+        if a[i] <= a[i - 1]:
+            return False
+    return True
+
+
+@njit(**_JIT)
 def _union(a: Any, b: Any) -> Any:
-    return a if b.size == 0 else np.unique(np.concatenate((a, b)))
+    """The ascending union of two ascending arrays without repeats (a merge: numba's
+    ``np.unique`` sorts, at several times the cost of the ranking it follows)."""
+    if b.size == 0:
+        return a
+    out = np.empty(a.size + b.size, np.int64)
+    i = j = n = 0
+    while i < a.size and j < b.size:
+        if a[i] < b[j]:
+            out[n] = a[i]
+            i += 1
+        elif b[j] < a[i]:
+            out[n] = b[j]
+            j += 1
+        else:
+            out[n] = a[i]
+            i += 1
+            j += 1
+        n += 1
+    while i < a.size:
+        out[n] = a[i]
+        i += 1
+        n += 1
+    while j < b.size:
+        out[n] = b[j]
+        j += 1
+        n += 1
+    return out[:n]
 
 
 @njit(**_JIT)
@@ -444,6 +633,7 @@ def cut(
     edit_tokens: Any,
     edit_kinds: Any,
     edit_values: Any,
+    history: Any,
     first_code: int,
     first_param: float,
     min_keep: int,
@@ -452,25 +642,34 @@ def cut(
     truncation, kept as a divisor and a few edited ids) and its cut to the candidates of the
     first truncation (top_k, greedy or min_p): (candidate ids ascending, working logits)."""
     temp = 1.0
-    edited = np.empty(edit_tokens.size, np.int64)
-    values = np.empty(edit_tokens.size, np.float64)
+    histories = np.count_nonzero(codes == HISTORY_EDIT)
+    edited = np.empty(edit_tokens.size + histories * history.size, np.int64)
+    values = np.empty(edited.size, np.float64)
     count = 0
     for j in range(codes.size):
         if codes[j] == TEMPERATURE:
             temp *= params[j]
             values[:count] /= params[j]
             continue
-        for e in range(edit_from[j], edit_from[j + 1]):
-            token = edit_tokens[e]
-            k = 0
-            while k < count and edited[k] != token:
-                k += 1
+        tokens, kinds, amounts = _stage_edits(
+            j, codes, params, edit_from, edit_tokens, edit_kinds, edit_values, history
+        )
+        # The first stage's own tokens, when ascending (a penalty's always are), are distinct:
+        # no need to look each one up among those edited before.
+        distinct = count == 0 and _ascending(tokens)
+        for e in range(tokens.size):
+            token = tokens[e]
+            k = count
+            if not distinct:
+                k = 0
+                while k < count and edited[k] != token:
+                    k += 1
             current = values[k] if k < count else float(raw[token]) / temp
             edited[k] = token
-            values[k] = _edited(current, edit_kinds[e], edit_values[e])
+            values[k] = _edited(current, kinds[e], amounts[e])
             count = max(count, k + 1)
     edited, values = edited[:count], values[:count]
-    extra = np.sort(edited)
+    extra = edited if _ascending(edited) else np.sort(edited)  # one edit stage: already is
     if first_code == MIN_P:
         head = _union(top_positions(raw, block_max, 1 + count), extra)
         w_max = _working(raw, head, temp, edited, values).max()
@@ -509,9 +708,10 @@ def draw(probs: Any, u: float) -> int:
 
 # --- whole rows -------------------------------------------------------------------------------
 #
-# A chain reaches the kernel packed into one int64 and one float64 array (``compiled.pack``):
-# numba's dispatcher types every argument on every call, and a dozen small arrays cost more to
-# type than a row's candidate rules cost to run.
+# A chain reaches the kernel packed into one int64 and one float64 array, once per chain
+# (``compiled._pack``; a penalty's edits are made here, from each row's history): numba's
+# dispatcher types every argument on every call, and a dozen small arrays cost more to type
+# than a row's candidate rules cost to run.
 #
 #   ints:   min_keep, first_code, n_prefix, n_prefix_edits, n_tail, n_tail_edits,
 #           prefix codes, prefix edit_from, prefix edit tokens, prefix edit kinds,
@@ -549,7 +749,7 @@ def _unpack(ints: Any, floats: Any) -> Any:
 
 
 @njit(**_JIT)
-def decide_row(raw: Any, ints: Any, floats: Any, u: float) -> Any:
+def decide_row(raw: Any, ints: Any, floats: Any, history: Any, u: float) -> Any:
     """One row, start to end: (status, kept ids, their probabilities, token, its probability,
     kept mass, entropy, raw log-probability of the token). A status other than DECIDED leaves
     the rest meaningless."""
@@ -559,8 +759,8 @@ def decide_row(raw: Any, ints: Any, floats: Any, u: float) -> Any:
     _, log_norm, entropy = scan(raw, block_max)
     if not math.isfinite(log_norm):
         return INVALID, np.empty(0, np.int64), np.empty(0), -1, 0.0, 0.0, entropy, 0.0
-    ids, w = cut(raw, block_max, *prefix, first_code, first_param, min_keep)
-    ids, w = apply_stages(ids, w, *tail, min_keep)
+    ids, w = cut(raw, block_max, *prefix, history, first_code, first_param, min_keep)
+    ids, w = apply_stages(ids, w, *tail, history, min_keep)
     if ids.size == 0:
         return EMPTY, ids, np.empty(0), -1, 0.0, 0.0, entropy, 0.0
     probs = softmax(w)
@@ -595,21 +795,26 @@ def pick_rows(
     hi: int,
     ints: Any,
     floats: Any,
+    histories: Any,
+    lengths: Any,
     seed_stream: Any,
     out_ints: Any,
     out_floats: Any,
 ) -> int:
     """Rows ``lo:hi`` of a batch, each with its own row of ``ints``/``floats`` (or all with the
-    only one), written into columns of ``out_ints`` (status, token, kept) and ``out_floats``
-    (kept mass, entropy, prob, logprob). Row ``b`` draws with output ``first_stream + b`` of
-    SplitMix64 seeded with ``seed``; ``seed_stream`` is the uint64 pair (seed, first_stream).
-    Returns how many rows it did not decide."""
+    only one) and its history ``histories[b, :lengths[b]]`` (or all with the only one), written
+    into columns of ``out_ints`` (status, token, kept) and ``out_floats`` (kept mass, entropy,
+    prob, logprob). Row ``b`` draws with output ``first_stream + b`` of SplitMix64 seeded with
+    ``seed``; ``seed_stream`` is the uint64 pair (seed, first_stream). Returns how many rows it
+    did not decide."""
     undecided = 0
     seed, first_stream = seed_stream[0], seed_stream[1]
     for b in range(lo, hi):
         plan = min(b, ints.shape[0] - 1)
+        past = min(b, histories.shape[0] - 1)
         u = uniform(seed, first_stream + np.uint64(b))
-        decided = decide_row(rows[b], ints[plan], floats[plan], u)
+        history = histories[past, : lengths[past]]
+        decided = decide_row(rows[b], ints[plan], floats[plan], history, u)
         out_ints[0, b], out_ints[1, b], out_ints[2, b] = decided[0], decided[3], decided[1].size
         out_floats[0, b], out_floats[1, b] = decided[5], decided[6]
         out_floats[2, b], out_floats[3, b] = decided[4], decided[7]

@@ -17,7 +17,7 @@ import numpy as np
 import numpy.typing as npt
 
 from service.model import Continuation, Model
-from service.sampling import Chain, Kernel, PickResult, fresh_seed, pick
+from service.sampling import Chain, Kernel, StepPick, StepPicker, fresh_seed
 
 
 class Cancelled(Exception):
@@ -72,9 +72,12 @@ class PromptRun:
         self.records: list[StepRecord] = []
         self.histories: list[list[int]] = []
         self.logits: list[npt.NDArray[np.float32]] | None = [] if keep_logits else None
-        self._picks: list[PickResult] = []
+        self._picks: list[StepPick] = []
         # The start marker put before text prompts is not something the penalties should see.
         self._skip = 0 if model.info.start_id is None else 1
+        # The chain and seed are checked once here; every step's row and history come from
+        # the model, so each pick need not check them again.
+        self._pick = StepPicker(chain, model.info.vocab_size, self.seed, kernel=kernel)
         # Raises PromptTooLong / PromptError before any model call.
         self._continuation: Continuation = model.generate(prompt, budget, self._step, stop=stop)
 
@@ -83,15 +86,12 @@ class PromptRun:
             raise Cancelled
         step = len(self._picks)
         history = history[self._skip :]
-        # A chain that reads no history draws the same without it, and pick then need not
-        # check every id of it again at every step.
-        seen = [history] if self.chain.reads_history else None
-        out = pick(self.chain, row, self.seed, seen, first_stream=step, kernel=self.kernel)
+        out = self._pick(row, history, step)
         self._picks.append(out)
         if self.logits is not None:
             self.logits.append(row)
             self.histories.append(history)
-        return int(out.tokens[0])
+        return out.token
 
     @property
     def prompt_tokens(self) -> int:
@@ -118,12 +118,12 @@ class PromptRun:
         record = StepRecord(
             token=step.token_id,
             text=step.text,
-            prob=float(out.prob[0]),
-            logprob=float(out.logprob[0]),
-            entropy=float(out.entropy[0]),
-            kept=int(out.kept[0]),
-            kept_mass=float(out.kept_mass[0]),
-            fallback=out.fallback[0],
+            prob=out.prob,
+            logprob=out.logprob,
+            entropy=out.entropy,
+            kept=out.kept,
+            kept_mass=out.kept_mass,
+            fallback=out.fallback,
         )
         self.records.append(record)
         return record

@@ -10,7 +10,15 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from sampling_reference import reference_row
 
-from service.sampling import compiled, final_distribution, kernel_available, parse_chain, pick
+from service.sampling import (
+    StepPick,
+    StepPicker,
+    compiled,
+    final_distribution,
+    kernel_available,
+    parse_chain,
+    pick,
+)
 
 # Every row is checked on both paths; without numba the suite must say so, not pass quietly.
 assert kernel_available(), "the compiled kernel needs numba (pip install -e '.[test]')"
@@ -111,6 +119,17 @@ def _compare(
                 chain, x[b], seed=3, history=[history[b]], first_stream=b, kernel=kernel
             )
             assert out.fallback[b] == reason and alone_out.fallback[0] == reason
+            # The prompt path's prepared picker: the same row, the same numbers.
+            stepped = StepPicker(chain, x.shape[1], 3, kernel=kernel)(x[b], history[b], b)
+            assert stepped == StepPick(
+                int(alone_out.tokens[0]),
+                int(alone_out.kept[0]),
+                float(alone_out.kept_mass[0]),
+                float(alone_out.entropy[0]),
+                float(alone_out.prob[0]),
+                float(alone_out.logprob[0]),
+                alone_out.fallback[0],
+            )
             if ambiguous:
                 continue
             assert want[out.tokens[b]] > 0, f"{kernel}: drawn token outside the reference set"
@@ -183,3 +202,40 @@ def test_report_row_count() -> None:
     assert ROWS_CHECKED["ambiguous"] < 0.1 * total
     # The kernel cuts rows for chains whose first truncation ranks; a good share must be those.
     assert ROWS_CHECKED["kernel_cut"] > 0.2 * total, ROWS_CHECKED
+
+
+def test_step_picker_equals_pick_over_a_long_continuation() -> None:
+    """A prompt's picks one step after another: histories that outgrow the picker's reused
+    arrays, penalties over the whole history and over a window, and a row the kernel hands
+    back (a NaN entry: the fallback decides it)."""
+    rng = np.random.default_rng(11)
+    vocab = 4096
+    chains = [
+        [{"repetition_penalty": {"factor": 1.3}}, {"temperature": 0.9}, {"top_k": 200}],
+        [
+            {"occurrence_penalty": {"per_use": 0.4, "present": 0.2, "window": 32}},
+            {"top_k": 100},
+            {"typical": 0.9},
+        ],
+        [{"top_p": 0.9}],  # the numpy path throughout
+    ]
+    for stages in chains:
+        chain = parse_chain(stages, min_keep=2)
+        for kernel in KERNELS:
+            picker = StepPicker(chain, vocab, 5, kernel=kernel)
+            history = [int(t) for t in rng.integers(0, vocab, 50)]
+            for step in range(150):
+                row = (rng.standard_normal(vocab) * 3).astype(np.float32)
+                if step == 70:
+                    row[9] = np.nan
+                want = pick(chain, row, 5, [history], first_stream=step, kernel=kernel)
+                got = picker(row, history, step)
+                assert got.token == want.tokens[0] and got.kept == want.kept[0]
+                assert got.fallback == want.fallback[0]
+                assert (got.kept_mass, got.prob, got.logprob) == (
+                    want.kept_mass[0],
+                    want.prob[0],
+                    want.logprob[0],
+                )
+                assert got.entropy == want.entropy[0] or np.isnan(want.entropy[0])
+                history.append(got.token)

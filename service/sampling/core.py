@@ -24,7 +24,7 @@ from collections.abc import Callable, Sequence
 from concurrent.futures import ThreadPoolExecutor, wait
 from dataclasses import dataclass
 from types import ModuleType
-from typing import TYPE_CHECKING, Literal
+from typing import TYPE_CHECKING, Literal, NamedTuple
 
 import numpy as np
 from numpy.typing import NDArray
@@ -142,6 +142,55 @@ def pick(
         uniforms = _uniforms(seed, first_stream, rows.shape[0])
         return _pick_numpy(chain, rows, histories, uniforms, seed, threads)
     return _pick_compiled(chain, plan, rows, histories, seed, first_stream, threads)
+
+
+class StepPick(NamedTuple):
+    """One row's pick as plain numbers: a ``PickResult`` row."""
+
+    token: int
+    kept: int
+    kept_mass: float
+    entropy: float
+    prob: float
+    logprob: float
+    fallback: str | None
+
+
+class StepPicker:
+    """``pick`` prepared for a stream of single rows from a trusted source (the model runner:
+    float32 rows of one vocabulary, histories of ids it made itself). The chain is checked
+    against the vocabulary and the seed once, here; a call then checks nothing more and reuses
+    its arrays, so a prompt step pays for the kernel and little else. Calling it with row,
+    history and stream equals ``pick(chain, row, seed, [history], first_stream=stream)`` (the
+    tests hold it so). Not for sharing between threads."""
+
+    __slots__ = ("_space", "chain", "kernel", "plan", "seed")
+
+    def __init__(self, chain: Chain, vocab: int, seed: int, *, kernel: Kernel | None = None):
+        _check_seed(seed)
+        _check_token_ids(chain, vocab)
+        self.chain, self.seed, self.kernel = chain, seed, kernel
+        self.plan = _plan(chain, kernel)
+        self._space = None if compiled is None else compiled.scratch(seed)
+
+    def __call__(self, row: F32, history: list[int], stream: int) -> StepPick:
+        if self.plan is not None:
+            assert compiled is not None and self._space is not None
+            if compiled.pick_one(self.plan, row, history, stream, self._space):
+                _, token, kept = self._space.out_ints[:, 0].tolist()
+                kept_mass, entropy, prob, logprob = self._space.out_floats[:, 0].tolist()
+                return StepPick(token, kept, kept_mass, entropy, prob, logprob, None)
+        seen = [history] if self.chain.reads_history else None
+        out = pick(self.chain, row, self.seed, seen, first_stream=stream, kernel=self.kernel)
+        return StepPick(
+            int(out.tokens[0]),
+            int(out.kept[0]),
+            float(out.kept_mass[0]),
+            float(out.entropy[0]),
+            float(out.prob[0]),
+            float(out.logprob[0]),
+            out.fallback[0],
+        )
 
 
 def _plan(chain: Chain, kernel: Kernel | None) -> Plan | None:

@@ -430,7 +430,8 @@ async def _pick_answer(
             out = await run_in_threadpool(run)
     except InputError as exc:
         raise input_problem(exc) from None
-    record_served(live, client, served, out.kept.tolist(), out.entropy.tolist(), out.fallback)
+    tokens, kept_list, entropy_list = out.tokens.tolist(), out.kept.tolist(), out.entropy.tolist()
+    record_served(live, client, served, kept_list, entropy_list, out.fallback)
     request_id = live.request_ids.mint(client, policy.name, policy.version, label)
     if route.capture is not None and live.capture is not None:
         # Before the request ends: shared-memory rows are copied (to float16) while still valid.
@@ -447,18 +448,29 @@ async def _pick_answer(
         "version": policy.version,
         "arm": label,
         "seed": out.seed,
-        "tokens": out.tokens.tolist(),
+        "tokens": tokens,
         "rows": [
             {
-                "token": int(out.tokens[b]),
-                "prob": float(out.prob[b]),
-                "logprob": float(out.logprob[b]),
-                "entropy": float(out.entropy[b]),
-                "kept": int(out.kept[b]),
-                "kept_mass": float(out.kept_mass[b]),
-                "fallback": out.fallback[b],
+                "token": token,
+                "prob": prob,
+                "logprob": logprob,
+                "entropy": entropy,
+                "kept": kept,
+                "kept_mass": kept_mass,
+                "fallback": fallback,
             }
-            for b in range(out.tokens.size)
+            # Whole columns to Python numbers at once: indexing numpy arrays row by row took
+            # a tenth of a millisecond for 32 rows.
+            for token, prob, logprob, entropy, kept, kept_mass, fallback in zip(
+                tokens,
+                out.prob.tolist(),
+                out.logprob.tolist(),
+                entropy_list,
+                kept_list,
+                out.kept_mass.tolist(),
+                out.fallback,
+                strict=True,
+            )
         ],
     }
     if clamped:

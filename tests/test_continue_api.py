@@ -4,6 +4,7 @@ streaming, metrics and every error class."""
 
 from __future__ import annotations
 
+import dataclasses
 import json
 import time
 from collections.abc import Iterator
@@ -19,6 +20,7 @@ from scipy.special import log_softmax, softmax
 from scipy.stats import entropy
 
 from service.model import BUNDLED, Model
+from service.prompting import StepRecord
 from service.registry import load_registry
 from service.sampling import final_distribution
 
@@ -216,3 +218,11 @@ def test_stopping_while_the_model_loads_waits_for_the_load(registry: Path) -> No
         live = client.app.state.live  # type: ignore[attr-defined]
         assert live.model is None  # stopped long before a load could finish
     assert live.model is not None and live.model_problem is None
+
+
+def test_step_record_as_dict_is_every_field() -> None:
+    """The hand-written as_dict (the answers' per-step objects) against dataclasses.asdict, so
+    a field added to StepRecord cannot go missing from the answers."""
+    record = StepRecord(7, "a", 0.5, -0.69, 1.2, 12, 0.9, None)
+    assert record.as_dict() == dataclasses.asdict(record)
+    assert list(record.as_dict()) == [f.name for f in dataclasses.fields(StepRecord)]

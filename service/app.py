@@ -21,9 +21,11 @@ from typing import Any
 import orjson
 from fastapi import FastAPI, Request
 from fastapi.responses import JSONResponse, StreamingResponse
+from fastapi.routing import APIRoute
 from starlette.background import BackgroundTask
 from starlette.concurrency import run_in_threadpool
 from starlette.responses import Response
+from starlette.routing import request_response
 
 from service import drain, metrics, problems
 from service.admission import Admission
@@ -214,8 +216,16 @@ def _admin(request: Request, live: Live) -> str:
     return identity.name
 
 
+class _DirectRoute(APIRoute):
+    """A documented route whose endpoint takes the Request and makes its Response itself, run
+    without FastAPI's per-request parameter solving and exit stacks (0.1 ms of a pick step)."""
+
+    def __init__(self, path: str, endpoint: Any, **options: Any) -> None:
+        super().__init__(path, endpoint, **options)
+        self.app = request_response(endpoint)
+
+
 def _add_routes(app: FastAPI, live: Live) -> None:
-    @app.post("/v1/pick", summary="Logits in, tokens and per-row diagnostics out")
     async def pick_tokens(request: Request) -> Response:
         client = _client(request, live)
         snapshot = live.snapshot  # one registry for the whole request
@@ -227,6 +237,14 @@ def _add_routes(app: FastAPI, live: Live) -> None:
             # _pick_answer's frame, which held the other references to a shared-memory view,
             # has ended: the mapping can close now.
             data.release()
+
+    app.router.add_api_route(
+        "/v1/pick",
+        pick_tokens,
+        methods=["POST"],
+        summary="Logits in, tokens and per-row diagnostics out",
+        route_class_override=_DirectRoute,
+    )
 
     @app.post("/v1/continue", summary="Prompt in, a continuation with per-step diagnostics out")
     async def continue_prompt(request: Request) -> Response:

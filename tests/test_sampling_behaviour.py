@@ -203,6 +203,7 @@ def test_banned_id_beyond_vocabulary_and_bad_history() -> None:
         ([{"ban": []}], "non-empty"),
         ([{"ban": [-1]}], "token ids"),
         ([{"token_bias": {"x": 1}}], "token id"),
+        ([{"token_bias": {3: 1.0, "3": 2.0}}], "id 3 is named twice"),
         ([{"repetition_penalty": {"factor": 0.5}}], "factor"),
         ([{"repetition_penalty": {"factor": 1.2, "span": 3}}], "keys from"),
         ([{"occurrence_penalty": {"per_use": -1}}], "per_use"),

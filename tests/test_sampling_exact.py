@@ -239,3 +239,34 @@ def test_step_picker_equals_pick_over_a_long_continuation() -> None:
                 )
                 assert got.entropy == want.entropy[0] or np.isnan(want.entropy[0])
                 history.append(got.token)
+
+
+def test_edits_that_overlap_within_and_across_stages() -> None:
+    """Edit stages meeting on the same ids: a ban of a biased id, penalties on banned and
+    biased ids, a temperature between edits; then a ban of 2 000 ids beside a penalty over a
+    long history (the kernel merges each stage's edits into those before it). Worked against
+    the sort reference."""
+    rng = np.random.default_rng(23)
+    small: list[dict[str, Any]] = [
+        {"token_bias": {3: 2.5, 7: 2.0, 20: -1.0}},
+        {"ban": [7, 11]},
+        {"repetition_penalty": {"factor": 1.4}},
+        {"temperature": 0.7},
+        {"occurrence_penalty": {"per_use": 0.3, "present": 0.1, "window": 5}},
+        {"top_k": 6},
+    ]
+    history = [[3, 7, 11, 3, 20, 5], [11, 11, 3], [], [20, 3, 7, 7, 7, 1, 2]]
+    x = (rng.standard_normal((4, 40)) * 2).astype(np.float32)
+    assert compiled.plan_for(parse_chain(small)) is not None
+    assert _compare(small, 1, x, history) == 4
+    vocab = 8000
+    banned = sorted(int(t) for t in rng.permutation(vocab)[:2000])
+    large: list[dict[str, Any]] = [
+        {"ban": banned},
+        {"repetition_penalty": {"factor": 1.3}},
+        {"temperature": 0.9},
+        {"top_k": 40},
+    ]
+    long_history = [[int(t) for t in rng.integers(0, vocab, 600)] for _ in range(3)]
+    x = (rng.standard_normal((3, vocab)) * 3).astype(np.float32)
+    assert _compare(large, 2, x, long_history) == 3

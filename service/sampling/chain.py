@@ -209,12 +209,16 @@ def _parse_stage(index: int, spec: Any) -> Stage:
     if method == "token_bias":
         if not isinstance(value, Mapping) or not value:
             raise fail("a mapping of token id (integer >= 0) to a finite number")
-        pairs = []
+        pairs: list[tuple[int, float]] = []
         for k, d in value.items():
             tid, delta = _token_id(k), _number(d)
             if tid is None or delta is None:
                 raise fail("a mapping of token id (integer >= 0) to a finite number")
             pairs.append((tid, delta))
+        named = [i for i, _ in pairs]
+        if len(set(named)) < len(named):  # 3 and "3" are both id 3: which delta was meant?
+            twice = sorted({i for i in named if named.count(i) > 1})
+            raise fail(f"each token id once (id {twice[0]} is named twice)")
         return Stage(method, tuple(sorted(pairs)))
     if method == "repetition_penalty":
         fields = _fields(value, {"factor", "window"}, required={"factor"}, fail=fail)

@@ -304,12 +304,21 @@ _NUMBERED = ("temperature", "top_k", "top_p", "typical", "min_p", "epsilon", "et
 
 
 def _static_edits(stage: Stage) -> tuple[list[int], list[int], list[float]]:
-    """Bans and biases: the same for every row."""
+    """Bans and biases: the same for every row, ids ascending and each once (``parse_chain``
+    makes them so; the kernel merges edits on that assumption, so it is checked here)."""
     if stage.method == "token_bias":
-        pairs = [(int(t), float(d)) for t, d in stage.param]  # type: ignore[union-attr]
-        return [t for t, _ in pairs], [kernel.SHIFT] * len(pairs), [d for _, d in pairs]
-    tokens = [int(t) for t in stage.token_ids]
-    return tokens, [kernel.REMOVE] * len(tokens), [0.0] * len(tokens)
+        pairs = sorted((int(t), float(d)) for t, d in stage.param)  # type: ignore[union-attr]
+        tokens, kinds, values = (
+            [t for t, _ in pairs],
+            [kernel.SHIFT] * len(pairs),
+            [d for _, d in pairs],
+        )
+    else:
+        tokens = sorted({int(t) for t in stage.token_ids})
+        kinds, values = [kernel.REMOVE] * len(tokens), [0.0] * len(tokens)
+    if len(set(tokens)) < len(tokens):
+        raise ValueError(f"{stage.method} names a token id more than once")
+    return tokens, kinds, values
 
 
 _WARM_UP_CHAINS: tuple[list[dict[str, Any]], ...] = (

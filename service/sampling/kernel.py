@@ -585,11 +585,33 @@ def _working(raw: Any, ids: Any, temp: float, edited: Any, values: Any) -> Any:
 
 
 @njit(**_JIT)
-def _ascending(a: Any) -> bool:
-    for i in range(1, a.size):  # noqa: SIM110 (a loop numba compiles; a generator it may not)
-        if a[i] <= a[i - 1]:
-            return False
-    return True
+def _merge_edits(
+    raw: Any, temp: float, edited: Any, values: Any, tokens: Any, kinds: Any, amounts: Any
+) -> tuple[Any, Any]:
+    """``edited``/``values`` (ascending ids, their working logits) after one stage's edits
+    (``tokens`` ascending: ``compiled`` packs bans and biases so, and ``_tally`` makes a
+    penalty's so): an id edited before is edited again from its value, a new one from its raw
+    logit over ``temp``."""
+    out_ids = np.empty(edited.size + tokens.size, np.int64)
+    out_values = np.empty(out_ids.size, np.float64)
+    i = t = n = 0
+    while i < edited.size or t < tokens.size:
+        if t == tokens.size or (i < edited.size and edited[i] < tokens[t]):
+            out_ids[n], out_values[n] = edited[i], values[i]
+            i += 1
+            n += 1
+        elif i < edited.size and edited[i] == tokens[t]:
+            out_ids[n] = edited[i]
+            out_values[n] = _edited(values[i], kinds[t], amounts[t])
+            i += 1
+            t += 1
+            n += 1
+        else:
+            out_ids[n] = tokens[t]
+            out_values[n] = _edited(float(raw[tokens[t]]) / temp, kinds[t], amounts[t])
+            t += 1
+            n += 1
+    return out_ids[:n], out_values[:n]
 
 
 @njit(**_JIT)
@@ -642,34 +664,21 @@ def cut(
     truncation, kept as a divisor and a few edited ids) and its cut to the candidates of the
     first truncation (top_k, greedy or min_p): (candidate ids ascending, working logits)."""
     temp = 1.0
-    histories = np.count_nonzero(codes == HISTORY_EDIT)
-    edited = np.empty(edit_tokens.size + histories * history.size, np.int64)
-    values = np.empty(edited.size, np.float64)
-    count = 0
+    # The edited ids so far, ascending, with their working logits: each edit stage is merged
+    # in, so a long ban followed by a penalty costs their lengths, not their product.
+    edited = np.empty(0, np.int64)
+    values = np.empty(0, np.float64)
     for j in range(codes.size):
         if codes[j] == TEMPERATURE:
             temp *= params[j]
-            values[:count] /= params[j]
+            values /= params[j]
             continue
         tokens, kinds, amounts = _stage_edits(
             j, codes, params, edit_from, edit_tokens, edit_kinds, edit_values, history
         )
-        # The first stage's own tokens, when ascending (a penalty's always are), are distinct:
-        # no need to look each one up among those edited before.
-        distinct = count == 0 and _ascending(tokens)
-        for e in range(tokens.size):
-            token = tokens[e]
-            k = count
-            if not distinct:
-                k = 0
-                while k < count and edited[k] != token:
-                    k += 1
-            current = values[k] if k < count else float(raw[token]) / temp
-            edited[k] = token
-            values[k] = _edited(current, kinds[e], amounts[e])
-            count = max(count, k + 1)
-    edited, values = edited[:count], values[:count]
-    extra = edited if _ascending(edited) else np.sort(edited)  # one edit stage: already is
+        edited, values = _merge_edits(raw, temp, edited, values, tokens, kinds, amounts)
+    count = edited.size
+    extra = edited
     if first_code == MIN_P:
         head = _union(top_positions(raw, block_max, 1 + count), extra)
         w_max = _working(raw, head, temp, edited, values).max()

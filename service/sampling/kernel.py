@@ -646,6 +646,38 @@ def _union(a: Any, b: Any) -> Any:
 
 
 @njit(**_JIT)
+def _top_unedited(raw: Any, block_max: Any, m: int, edited: Any) -> Any:
+    """Positions (ascending) of the k largest raw entries, for the least k found that leaves
+    at least ``m`` of them outside ``edited`` (ascending): these hold the m highest working
+    logits among the unedited ids, since a positive temperature keeps the raw order. Growing
+    k by the edited ids found (at most m + len(edited) in all) keeps a long ban from turning
+    into as many candidates."""
+    k = m
+    while True:
+        top = top_positions(raw, block_max, k)
+        found = _common(top, edited)
+        if top.size - found >= m or top.size < k or k >= m + edited.size:
+            return top
+        k = min(m + found, m + edited.size)
+
+
+@njit(**_JIT)
+def _common(a: Any, b: Any) -> int:
+    """How many ids two ascending arrays share."""
+    i = j = n = 0
+    while i < a.size and j < b.size:
+        if a[i] < b[j]:
+            i += 1
+        elif b[j] < a[i]:
+            j += 1
+        else:
+            n += 1
+            i += 1
+            j += 1
+    return n
+
+
+@njit(**_JIT)
 def cut(
     raw: Any,
     block_max: Any,
@@ -678,9 +710,10 @@ def cut(
         )
         edited, values = _merge_edits(raw, temp, edited, values, tokens, kinds, amounts)
     count = edited.size
-    extra = edited
+    # Edited ids that can still be chosen; a banned one cannot, however high its raw logit.
+    extra = edited[values > -np.inf]
     if first_code == MIN_P:
-        head = _union(top_positions(raw, block_max, 1 + count), extra)
+        head = _union(_top_unedited(raw, block_max, 1, edited), extra)
         w_max = _working(raw, head, temp, edited, values).max()
         ids = head
         if w_max > -np.inf:
@@ -688,10 +721,10 @@ def cut(
             floor = (w_max + math.log(first_param)) * temp
             floor -= 1e-4 * (abs(floor) + 1.0)
             ids = _union(positions_at_least(raw, block_max, np.float32(floor)), extra)
-        ids = _union(ids, _union(top_positions(raw, block_max, min_keep + count), extra))
+        ids = _union(ids, _union(_top_unedited(raw, block_max, min_keep, edited), extra))
     else:
         m = 1 if first_code == GREEDY else max(int(first_param), min_keep)
-        ids = _union(top_positions(raw, block_max, m + count), extra)
+        ids = _union(_top_unedited(raw, block_max, m, edited), extra)
     w = _working(raw, ids, temp, edited, values)
     if count:  # raw candidates are finite; only an edit (a ban) can remove one
         alive = w > -np.inf

@@ -238,6 +238,9 @@ def test_step_picker_equals_pick_over_a_long_continuation() -> None:
                     want.logprob[0],
                 )
                 assert got.entropy == want.entropy[0] or np.isnan(want.entropy[0])
+                if step == 100:  # a float64 and a strided row: converted, not refused
+                    for other in (row.astype(np.float64), np.repeat(row, 2)[::2]):
+                        assert picker(other, history, step) == got
                 history.append(got.token)
 
 

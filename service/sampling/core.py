@@ -174,7 +174,8 @@ class StepPicker:
         self._space = None if compiled is None else compiled.scratch(seed)
 
     def __call__(self, row: F32, history: list[int], stream: int) -> StepPick:
-        if self.plan is not None:
+        # Other rows (float16/64, strided) take pick's path, which converts them.
+        if self.plan is not None and row.dtype == np.float32 and row.flags.c_contiguous:
             assert compiled is not None and self._space is not None
             if compiled.pick_one(self.plan, row, history, stream, self._space):
                 _, token, kept = self._space.out_ints[:, 0].tolist()

@@ -649,9 +649,11 @@ def _union(a: Any, b: Any) -> Any:
 def _top_unedited(raw: Any, block_max: Any, m: int, edited: Any) -> Any:
     """Positions (ascending) of the k largest raw entries, for the least k found that leaves
     at least ``m`` of them outside ``edited`` (ascending): these hold the m highest working
-    logits among the unedited ids, since a positive temperature keeps the raw order. Growing
-    k by the edited ids found (at most m + len(edited) in all) keeps a long ban from turning
-    into as many candidates."""
+    logits among the unedited ids, since a positive temperature keeps the raw order. When there
+    are more edited ids than m, growing k by the edited ids found (at most m + len(edited) in
+    all) keeps a long ban from turning into as many candidates."""
+    if edited.size <= m:  # a few more candidates cost less than ranking again
+        return top_positions(raw, block_max, m + edited.size)
     k = m
     while True:
         top = top_positions(raw, block_max, k)

@@ -295,7 +295,7 @@ def _largest(values: Any, m: int) -> Any:
     """Mask of the ``m`` largest of ``values`` (m < size), ties at the m-th value to the lower
     index: what a stable sort by decreasing value would put first, without sorting. One
     selection finds the m-th value; everything above it is in, then equal ones in index order."""
-    kth = _kth_smallest(values, values.size - m)
+    kth = np.partition(values, values.size - m)[values.size - m]
     keep = values > kth
     need = m - np.count_nonzero(keep)
     for i in range(values.size):
@@ -305,55 +305,6 @@ def _largest(values: Any, m: int) -> Any:
             keep[i] = True
             need -= 1
     return keep
-
-
-@njit(**_JIT)
-def _kth_smallest(values: Any, k: int) -> float:
-    """The ``k``-th smallest (0-based) of finite ``values``, by quickselect in float64 (exact
-    for float32 input). numba's own ``np.partition`` branches on every comparison and takes
-    five times as long as numpy's; here each partition pass is branch-free (``_split``).
-    Entries equal to the pivot are set apart in a second pass, so repeated values cost no
-    extra rounds; past a depth of about 2 log2(n) the rest is sorted with a merge sort, so no
-    input, however built, makes the selection quadratic."""
-    src = values.astype(np.float64)
-    dst = np.empty_like(src)
-    lo, hi = 0, src.size  # the answer is in src[lo:hi]
-    depth = 2 * int(math.log2(src.size + 1)) + 4
-    while hi - lo > 1:
-        if depth == 0:
-            part = src[lo:hi]
-            return float(part[np.argsort(part, kind="mergesort")[k - lo]])
-        depth -= 1
-        x, y, z = src[lo], src[(lo + hi) >> 1], src[hi - 1]
-        pivot = max(min(x, y), min(max(x, y), z))  # the median of three
-        below = _split(src, dst, lo, hi, pivot, False)
-        src, dst = dst, src
-        if k < below:
-            hi = below
-            continue
-        not_above = _split(src, dst, below, hi, pivot, True)
-        src, dst = dst, src
-        if k < not_above:
-            return float(pivot)
-        lo = not_above
-    return float(src[k])
-
-
-@njit(inline="always")
-def _split(src: Any, dst: Any, lo: int, hi: int, pivot: float, equal_too: bool) -> int:
-    """Copies ``src[lo:hi]`` to ``dst[lo:hi]``, the entries below ``pivot`` (or, with
-    ``equal_too``, not above it) first and the rest from the back; returns where the rest
-    starts. Every entry is written at both ends and the comparison only moves the ends (a
-    slot written in vain is written again later), so nothing branches on the data."""
-    front, back = lo, hi - 1
-    for i in range(lo, hi):
-        v = src[i]
-        dst[front] = v
-        dst[back] = v
-        first = (v <= pivot) if equal_too else (v < pivot)
-        front += first
-        back -= 1 - first
-    return front
 
 
 # Sub-block length inside a visited block: the compare over one is vectorised, and only the few

@@ -84,6 +84,8 @@ def narrow_row(chain: Chain, raw: F32, history: list[int]) -> tuple[IntArray, F6
             t = stage.number
             row.temp *= t
             row.edits = {i: v / t for i, v in row.edits.items()}
+        elif method == "ban":  # -inf whatever the current value: no per-id work in Python
+            row.edits.update(dict.fromkeys(stage.token_ids, -math.inf))
         elif method in EDIT_METHODS:
             for token, update in edits_for(stage, history).items():
                 row.edits[token] = update(row.current(token))
@@ -119,8 +121,9 @@ def _min_p_superset(row: _Lazy, ratio: float) -> IntArray:
 
 def _materialise(row: _Lazy, index: int) -> tuple[IntArray, F64, int]:
     w = row.raw.astype(np.float64) / row.temp
-    for token, value in row.edits.items():
-        w[token] = value
+    if row.edits:
+        values = np.fromiter(row.edits.values(), dtype=np.float64, count=len(row.edits))
+        w[row.edited_ids()] = values
     alive = w > -np.inf
     if alive.all():
         return np.arange(w.size), w, index

@@ -239,18 +239,21 @@ def _count_at_least(values: Any, floor: Any) -> int:
 def _count_floor(values: Any, top: Any, m: int) -> Any:
     """A float32 value that at least ``m`` of ``values`` reach and not many more (about 2m),
     found by counting, a vectorised pass each: steps down from ``top`` (the largest value)
-    that double until m are reached, then halving between the last two steps. -inf when
-    fewer than m are finite. The counts are the very comparisons ``positions_at_least``
-    makes, so the bound is exact."""
-    if not top > -np.inf:
+    that double until m are reached (or the least finite value is), then halving between the
+    last two steps. -inf when no more than m are finite: every finite one is then wanted, and
+    the gathering visits only blocks that hold one (a row masked with -inf but for a few ids).
+    The counts are the very comparisons ``positions_at_least`` makes, so the bound is exact."""
+    finite, lowest = _finite_count_and_min(values)
+    if finite <= m:
         return np.float32(-np.inf)
     above, step = float(top), 1.0
     below = np.float32(above - step)
     count = _count_at_least(values, below)
     while count < m:
-        if step > 1e30:  # fewer than m finite values
-            return np.float32(-np.inf)
         above, step = float(below), step * 2.0
+        if float(top) - step <= lowest:
+            below, count = np.float32(lowest), finite
+            break
         below = np.float32(float(top) - step)
         count = _count_at_least(values, below)
     for _ in range(12):
@@ -265,6 +268,18 @@ def _count_floor(values: Any, top: Any, m: int) -> Any:
         else:
             above = float(middle)
     return below
+
+
+@njit(fastmath=_VECTOR_MATH, **_JIT)
+def _finite_count_and_min(values: Any) -> tuple[int, float]:
+    """How many of ``values`` are finite (no NaN or +inf reaches here), and the least of those."""
+    count = 0
+    lowest = np.float32(np.inf)
+    for i in range(values.size):
+        finite = values[i] > -np.inf
+        count += finite
+        lowest = min(lowest, values[i] if finite else np.float32(np.inf))
+    return count, float(lowest)
 
 
 @njit(**_JIT)

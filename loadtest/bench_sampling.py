@@ -111,8 +111,41 @@ def main() -> int:
                 f" {row['exp_pass_us_per_row']:>9.0f} {row['compiled_over_exp']:>12.2f}x"
                 f" {row['reference_over_compiled']:>12.1f}x {row['numpy_over_compiled']:>14.1f}x"
             )
+    results += special_rows(vocabs[-1] if args.quick else 128_256, args.repeats)
     write_results(args.out, results)
     return 0
+
+
+def special_rows(vocab: int, repeats: int) -> list[dict[str, Any]]:
+    """One row of ``vocab`` in shapes that break a naive cut: masked with -inf or with -1e9 but
+    for 10 ids (constrained decoding), and the chain behind a ban of 47 % of the vocabulary."""
+    rng = np.random.default_rng(5)
+    plain = logits(1, vocab, seed=11)
+    allowed = rng.choice(vocab, 10, replace=False)
+    masked_inf = np.full_like(plain, -np.inf)
+    masked_inf[0, allowed] = plain[0, allowed]
+    masked_big = np.full_like(plain, -1e9)
+    masked_big[0, allowed] = plain[0, allowed]
+    banned = [int(t) for t in rng.permutation(vocab)[: vocab * 47 // 100]]
+    cases = [
+        ("plain row", CHAIN, plain),
+        ("masked with -inf but 10 ids", CHAIN, masked_inf),
+        ("masked with -1e9 but 10 ids", CHAIN, masked_big),
+        (f"ban of {len(banned)} ids first", [{"ban": banned}, *CHAIN], plain),
+    ]
+    print(f"\nV = {vocab}, one row, chain as above (us per row):")
+    print(f"{'case':<34} {'compiled':>9} {'numpy':>9}")
+    rows = []
+    for name, stages, x in cases:
+        chain = parse_chain(stages)
+        times = {}
+        for kernel in ("compiled", "numpy"):
+            fn = partial(pick, chain, x, seed=1, kernel=kernel)
+            fn()
+            times[kernel] = float(np.median([seconds(fn, 10) for _ in range(repeats)])) * 1e6
+        print(f"{name:<34} {times['compiled']:>9.0f} {times['numpy']:>9.0f}")
+        rows.append({"vocab": vocab, "case": name, **{f"{k}_us": v for k, v in times.items()}})
+    return rows
 
 
 if __name__ == "__main__":

@@ -250,6 +250,9 @@ def _count_floor(values: Any, top: Any, m: int) -> Any:
     finite, lowest = _finite_count_and_min(values)
     if finite <= m:
         return np.float32(-np.inf)
+    least = np.float32(lowest)
+    if _count_at_least(values, np.nextafter(least, np.float32(np.inf))) < m:
+        return least  # the m-th largest is the least value itself (a row masked with -1e9)
     above, step = float(top), 1.0
     below = np.float32(above - step)
     count = _count_at_least(values, below)
@@ -304,8 +307,12 @@ def top_positions(row: Any, block_max: Any, m: int) -> Any:
         return found
     values = row[found]
     if found.size > 4 * m + 64:
-        near = values >= _count_floor(values, values.max(), m)
+        floor = _count_floor(values, values.max(), m)
+        near = values >= floor
         found, values = found[near], values[near]
+        if _count_at_least(values, np.nextafter(floor, np.float32(np.inf))) < m:
+            # The floor is the m-th largest itself, shared by many: no selection needed.
+            return found[_largest_from(values, m, floor)]
     return found[_largest(values, m)]
 
 
@@ -314,7 +321,12 @@ def _largest(values: Any, m: int) -> Any:
     """Mask of the ``m`` largest of ``values`` (m < size), ties at the m-th value to the lower
     index: what a stable sort by decreasing value would put first, without sorting. One
     selection finds the m-th value; everything above it is in, then equal ones in index order."""
-    kth = np.partition(values, values.size - m)[values.size - m]
+    return _largest_from(values, m, np.partition(values, values.size - m)[values.size - m])
+
+
+@njit(**_JIT)
+def _largest_from(values: Any, m: int, kth: Any) -> Any:
+    """The mask of ``_largest`` when the m-th largest value ``kth`` is known."""
     keep = values > kth
     need = m - np.count_nonzero(keep)
     for i in range(values.size):

@@ -52,7 +52,8 @@ class UnixConnection(http.client.HTTPConnection):
 def wait_ready(
     port: int, path: str, process: subprocess.Popen[bytes], uds: Path | None = None
 ) -> None:
-    deadline = time.monotonic() + 30
+    # A first start compiles the sampling kernel (about 40 s) before /readyz says ready.
+    deadline = time.monotonic() + 120
     while time.monotonic() < deadline:
         if process.poll() is not None:
             raise RuntimeError("server exited")

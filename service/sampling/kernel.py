@@ -442,21 +442,9 @@ def _apply_edits(ids: Any, w: Any, tokens: Any, kinds: Any, values: Any) -> tupl
 
 
 @njit(**_JIT)
-def apply_stages(
-    ids: Any,
-    w: Any,
-    codes: Any,
-    params: Any,
-    edit_from: Any,
-    edit_tokens: Any,
-    edit_kinds: Any,
-    edit_values: Any,
-    history: Any,
-    min_keep: int,
-) -> tuple[Any, Any]:
-    """The stages ``codes``/``params`` on candidates (ids ascending, float64 working logits).
-    Edit stage j changes ``edit_tokens[edit_from[j]:edit_from[j + 1]]``, or for a
-    HISTORY_EDIT the tokens of ``history`` it describes."""
+def apply_stages(ids: Any, w: Any, stages: Any, history: Any, min_keep: int) -> tuple[Any, Any]:
+    """The ``stages`` (see ``_unpack``) on candidates (ids ascending, float64 working logits)."""
+    codes, params = stages[0], stages[1]
     for j in range(codes.size):
         if ids.size == 0:
             break
@@ -465,9 +453,7 @@ def apply_stages(
         if code == TEMPERATURE:
             w = w / x
         elif code in (EDIT, HISTORY_EDIT):
-            tokens, kinds, values = _stage_edits(
-                j, codes, params, edit_from, edit_tokens, edit_kinds, edit_values, history
-            )
+            tokens, kinds, values = _stage_edits(j, stages, history)
             ids, w = _apply_edits(ids, w, tokens, kinds, values)
         elif code == TOP_K:
             ids, w = _most_probable(ids, w, max(int(x), min_keep))
@@ -498,19 +484,11 @@ def apply_stages(
 
 
 @njit(**_JIT)
-def _stage_edits(
-    j: int,
-    codes: Any,
-    params: Any,
-    edit_from: Any,
-    edit_tokens: Any,
-    edit_kinds: Any,
-    edit_values: Any,
-    history: Any,
-) -> tuple[Any, Any, Any]:
+def _stage_edits(j: int, stages: Any, history: Any) -> tuple[Any, Any, Any]:
     """(tokens ascending, kinds, values) of edit stage ``j``: its packed edits, or for a
     HISTORY_EDIT those made from ``history`` (the arrays form of ``batch.edits_for``, with the
     same floating-point operations: counts are exact in float64)."""
+    codes, params, edit_from, edit_tokens, edit_kinds, edit_values = stages
     lo, hi = edit_from[j], edit_from[j + 1]
     if codes[j] != HISTORY_EDIT:
         return edit_tokens[lo:hi], edit_kinds[lo:hi], edit_values[lo:hi]
@@ -665,12 +643,7 @@ def _common(a: Any, b: Any) -> int:
 def cut(
     raw: Any,
     block_max: Any,
-    codes: Any,
-    params: Any,
-    edit_from: Any,
-    edit_tokens: Any,
-    edit_kinds: Any,
-    edit_values: Any,
+    stages: Any,
     history: Any,
     first_code: int,
     first_param: float,
@@ -679,6 +652,7 @@ def cut(
     """The lazy prefix of ``full.narrow_row`` (temperatures and edits before the first
     truncation, kept as a divisor and a few edited ids) and its cut to the candidates of the
     first truncation (top_k, greedy or min_p): (candidate ids ascending, working logits)."""
+    codes, params = stages[0], stages[1]
     temp = 1.0
     # The edited ids so far, ascending, with their working logits: each edit stage is merged
     # in, so a long ban followed by a penalty costs their lengths, not their product.
@@ -689,9 +663,7 @@ def cut(
             temp *= params[j]
             values /= params[j]
             continue
-        tokens, kinds, amounts = _stage_edits(
-            j, codes, params, edit_from, edit_tokens, edit_kinds, edit_values, history
-        )
+        tokens, kinds, amounts = _stage_edits(j, stages, history)
         edited, values = _merge_edits(raw, temp, edited, values, tokens, kinds, amounts)
     count = edited.size
     # Edited ids that can still be chosen; a banned one cannot, however high its raw logit.
@@ -749,6 +721,9 @@ HEAD = 6
 
 @njit(**_JIT)
 def _unpack(ints: Any, floats: Any) -> Any:
+    """The prefix's and the tail's stages, each a tuple (codes, params, edit_from, edit tokens,
+    edit kinds, edit values): edit stage j changes ``tokens[edit_from[j]:edit_from[j + 1]]``,
+    or describes a HISTORY_EDIT there."""
     n_pre, e_pre, n_tail, e_tail = ints[2], ints[3], ints[4], ints[5]
     i, f = HEAD, 1
     codes = ints[i : i + n_pre]
@@ -785,8 +760,8 @@ def decide_row(raw: Any, ints: Any, floats: Any, history: Any, u: float) -> Any:
     _, log_norm, entropy = scan(raw, block_max)
     if not math.isfinite(log_norm):
         return INVALID, np.empty(0, np.int64), np.empty(0), -1, 0.0, 0.0, entropy, 0.0
-    ids, w = cut(raw, block_max, *prefix, history, first_code, first_param, min_keep)
-    ids, w = apply_stages(ids, w, *tail, history, min_keep)
+    ids, w = cut(raw, block_max, prefix, history, first_code, first_param, min_keep)
+    ids, w = apply_stages(ids, w, tail, history, min_keep)
     if ids.size == 0:
         return EMPTY, ids, np.empty(0), -1, 0.0, 0.0, entropy, 0.0
     probs = softmax(w)

@@ -14,6 +14,7 @@ import numpy as np
 import pytest
 from conftest import assert_problem, auth, in_process
 from fastapi.testclient import TestClient
+from prometheus_client import REGISTRY
 
 from service.app import create_app
 from service.settings import Settings
@@ -47,6 +48,18 @@ GOOD = {"logits": [[0.0, 1.0, 2.0, 0.5]]}
 def test_good_request_answers(client: TestClient) -> None:
     r = pick_json(client, {**GOOD, "seed": 1})
     assert r.status_code == 200 and r.json()["seed"] == 1
+
+
+def test_picks_are_counted_and_other_methods_reach_the_router(client: TestClient) -> None:
+    """POST /v1/pick takes a lane past the router and counts its rows after the answer is
+    sent; the count is there by the time the caller has the answer."""
+    labels = {"client": "usher-desk", "policy": "box-office", "version": "1", "arm": "0"}
+    before = REGISTRY.get_sample_value("keepset_rows_total", labels) or 0.0
+    rows = [[0.0, 1.0, 2.0, 0.5], [3.0, 1.0, 2.0, 0.5], [0.0, 0.0, 0.0, 9.0]]
+    assert pick_json(client, {"logits": rows, "seed": 4}).status_code == 200
+    assert REGISTRY.get_sample_value("keepset_rows_total", labels) == before + 3
+    assert_problem(client.get("/v1/pick", headers=auth("usher-desk")), 405)
+    assert_problem(client.post("/v1/pick", json=GOOD), 401, "Bearer")
 
 
 def test_malformed_json(client: TestClient) -> None:
@@ -200,7 +213,7 @@ def test_readiness_and_docs(client: TestClient) -> None:
         time.sleep(0.05)
     documented = client.get("/openapi.json")
     assert documented.status_code == 200
-    # /v1/pick runs on a lighter route class; it must stay in the documentation all the same.
+    # POST /v1/pick skips the router (a lane); it must stay in the documentation all the same.
     assert {"/v1/pick", "/v1/continue", "/v1/outcome"} <= set(documented.json()["paths"])
     live = client.app.state.live  # type: ignore[attr-defined]
     live.draining = True

@@ -30,7 +30,7 @@ import urllib.parse
 from collections.abc import AsyncIterator, Iterator, Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
+from typing import Any, TypeVar
 
 import httpx
 import numpy as np
@@ -43,6 +43,7 @@ from service.shm import Segment
 from service.unix_posts import UnixPoster
 
 NPY_MEDIA = "application/x-npy"
+_Frozen = TypeVar("_Frozen")
 
 
 @dataclass(frozen=True)
@@ -70,7 +71,7 @@ class PickReply:
 
     @classmethod
     def from_json(cls, data: Mapping[str, Any]) -> PickReply:
-        return cls(**_head(data), rows=[Row(**row) for row in data["rows"]])
+        return cls(**_head(data), rows=_frozen_all(Row, data["rows"]))
 
 
 @dataclass(frozen=True)
@@ -104,8 +105,25 @@ class ContinueReply:
             prompt_tokens=int(data["prompt_tokens"]),
             text=data["text"],
             finish=data["finish"],
-            steps=[Step(**step) for step in data["steps"]],
+            steps=_frozen_all(Step, data["steps"]),
         )
+
+
+def _frozen_all(cls: type[_Frozen], items: Sequence[Mapping[str, Any]]) -> list[_Frozen]:
+    """``[cls(**item) for item in items]`` for a frozen dataclass, without its ``__init__``,
+    which sets every field through ``object.__setattr__``: 2-4 µs a row, a tenth of a
+    millisecond for a 32-row answer. An item whose keys are not exactly the fields goes
+    through ``__init__``, for its error."""
+    fields = cls.__dataclass_fields__.keys()  # type: ignore[attr-defined]
+    made = []
+    for item in items:
+        if item.keys() == fields:
+            one = object.__new__(cls)
+            one.__dict__.update(item)
+        else:
+            one = cls(**item)
+        made.append(one)
+    return made
 
 
 def _head(data: Mapping[str, Any]) -> dict[str, Any]:

@@ -1,0 +1,221 @@
+"""The sync client's hand-written HTTP/1.1 exchange over a Unix socket, against a scripted server
+on a real socket: the request bytes it writes, each form of answer body HTTP/1.1 allows
+(RFC 9112 section 6: Content-Length, chunked, up to the close), interim answers, connection
+reuse and replacement, and every broken answer as httpx's RemoteProtocolError, never a hang or
+a wrong body. Answers arrive split at arbitrary points (hypothesis), as a stream socket may
+deliver them."""
+
+from __future__ import annotations
+
+import contextlib
+import shutil
+import socket
+import tempfile
+import threading
+from collections.abc import Iterator
+from pathlib import Path
+
+import httpx
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from service.unix_posts import UnixPoster
+
+
+class Scripted:
+    """A Unix socket server that answers each request with the next scripted answer, written
+    in the given pieces, and closes the connection after it when told to."""
+
+    def __init__(self, path: Path):
+        self.path = path
+        self.script: list[tuple[list[bytes], bool]] = []
+        self.requests: list[bytes] = []
+        self.connections = 0
+        self._open: list[socket.socket] = []
+        self._listener = socket.socket(socket.AF_UNIX, socket.SOCK_STREAM)
+        self._listener.bind(str(path))
+        self._listener.listen(8)
+        self._listener.settimeout(10)
+        self._thread = threading.Thread(target=self._serve, daemon=True)
+        self._thread.start()
+
+    def answer(self, pieces: list[bytes] | bytes, close: bool = False) -> None:
+        self.script.append(([pieces] if isinstance(pieces, bytes) else pieces, close))
+
+    def _serve(self) -> None:
+        while True:
+            try:
+                conn, _ = self._listener.accept()
+            except OSError:
+                return
+            self.connections += 1
+            self._open.append(conn)
+            with conn, contextlib.suppress(OSError):
+                conn.settimeout(10)
+                while self._one(conn):
+                    pass
+
+    def _one(self, conn: socket.socket) -> bool:
+        data = b""
+        while b"\r\n\r\n" not in data:
+            more = conn.recv(65536)
+            if not more:
+                return False
+            data += more
+        head, _, body = data.partition(b"\r\n\r\n")
+        length = next(
+            int(line.split(b":")[1])
+            for line in head.split(b"\r\n")
+            if line.lower().startswith(b"content-length:")
+        )
+        while len(body) < length:
+            body += conn.recv(65536)
+        self.requests.append(head + b"\r\n\r\n" + body)
+        pieces, close = self.script.pop(0)
+        for piece in pieces:
+            conn.sendall(piece)
+        return not close
+
+    def close(self) -> None:
+        # shutdown, not just close: it wakes the thread blocked in accept() or recv().
+        for conn in [*self._open, self._listener]:
+            with contextlib.suppress(OSError):
+                conn.shutdown(socket.SHUT_RDWR)
+        self._listener.close()
+        self._thread.join(timeout=10)
+        assert not self._thread.is_alive()
+
+
+@pytest.fixture
+def server() -> Iterator[Scripted]:
+    folder = Path(tempfile.mkdtemp(prefix="ks-posts-", dir="/tmp"))
+    scripted = Scripted(folder / "s.sock")
+    yield scripted
+    scripted.close()
+    shutil.rmtree(folder)
+
+
+def poster(server: Scripted, timeout: float = 5.0) -> UnixPoster:
+    return UnixPoster(str(server.path), "keepset", {"Authorization": "Bearer k-1"}, timeout)
+
+
+OK = b'HTTP/1.1 200 OK\r\ncontent-length: 7\r\ncontent-type: application/json\r\n\r\n{"a":1}'
+
+
+def test_request_bytes_and_a_kept_connection(server: Scripted) -> None:
+    server.answer(OK)
+    server.answer(OK)
+    posts = poster(server)
+    assert posts.post("/v1/pick", b"{}", "application/json") == (200, b'{"a":1}')
+    assert posts.post("/v1/pick", b"[1]", "application/json") == (200, b'{"a":1}')
+    assert server.connections == 1
+    assert server.requests[0] == (
+        b"POST /v1/pick HTTP/1.1\r\nHost: keepset\r\nAuthorization: Bearer k-1\r\n"
+        b"Content-Type: application/json\r\nContent-Length: 2\r\n\r\n{}"
+    )
+    posts.close()
+
+
+def test_a_large_body_arrives_whole(server: Scripted) -> None:
+    body = bytes(range(256)) * 4096  # 1 MiB: written after the head, not joined to it
+    server.answer(OK)
+    assert poster(server).post("/v1/pick", body, "application/x-npy")[0] == 200
+    assert server.requests[0].endswith(b"\r\n\r\n" + body)
+
+
+def test_chunked_interim_and_until_close_bodies(server: Scripted) -> None:
+    chunked = (
+        b"HTTP/1.1 200 OK\r\nTransfer-Encoding: chunked\r\n\r\n"
+        b"4;ext=1\r\nkeep\r\n4\r\nset \r\nE\r\nrows\r\n\r\nwhole.\r\n0\r\nX-Tail: 1\r\n\r\n"
+    )
+    server.answer(chunked)
+    server.answer(b"HTTP/1.1 100 Continue\r\n\r\n" + OK)
+    server.answer(b"HTTP/1.1 200 OK\r\nconnection: close\r\n\r\nto the end", close=True)
+    server.answer(b"HTTP/1.1 204 No Content\r\n\r\n")
+    posts = poster(server)
+    # Sizes worked by hand: 4 + 4 + 0xE (14: "rows", CRLF CRLF, "whole."), a chunk extension
+    # and a trailer, both to be skipped.
+    assert posts.post("/x", b"", "text/plain") == (200, b"keepset rows\r\n\r\nwhole.")
+    assert posts.post("/x", b"", "text/plain") == (200, b'{"a":1}')
+    assert posts.post("/x", b"", "text/plain") == (200, b"to the end")
+    assert posts.post("/x", b"", "text/plain") == (204, b"")
+    assert server.connections == 2  # the body that ran to the close needed a new connection
+
+
+def test_connection_close_header_and_a_closed_kept_connection(server: Scripted) -> None:
+    server.answer(
+        b"HTTP/1.1 200 OK\r\nContent-Length: 2\r\nConnection: close\r\n\r\nhi", close=True
+    )
+    server.answer(OK, close=True)  # closed by the server after answering, without saying so
+    server.answer(OK)
+    posts = poster(server)
+    assert posts.post("/x", b"", "text/plain") == (200, b"hi")
+    assert posts.post("/x", b"", "text/plain") == (200, b'{"a":1}')
+    # The server closed the kept connection: noticed before sending, so the request is sent once.
+    assert posts.post("/x", b"", "text/plain") == (200, b'{"a":1}')
+    assert (server.connections, len(server.requests)) == (3, 3)
+
+
+@pytest.mark.parametrize(
+    "answer, words",
+    [
+        (b"SMTP 220 hello\r\n\r\n", "status line"),
+        (b"HTTP/1.1 2x0 OK\r\n\r\n", "status line"),
+        (b"HTTP/1.1 200 OK\r\nno colon here\r\n\r\n", "header line"),
+        (b"HTTP/1.1 200 OK\r\nContent-Length: -3\r\n\r\n", "Content-Length"),
+        (b"HTTP/1.1 200 OK\r\nContent-Length: 10\r\n\r\nshort", "bytes short"),
+        (b"HTTP/1.1 200 OK\r\nTransfer-Encoding: chunked\r\n\r\nzz\r\n", "chunk size"),
+        (b"HTTP/1.1 200 OK\r\nTransfer-Encoding: chunked\r\n\r\n2\r\nabXY", "CRLF"),
+        (b"HTTP/1.1 200 OK\r\nContent-Le", "before an answer"),
+        (b"HTTP/1.1 200 OK\r\nX-Big: " + b"a" * 70_000, "over 65536"),
+    ],
+)
+def test_broken_answers_are_protocol_errors(server: Scripted, answer: bytes, words: str) -> None:
+    server.answer(answer, close=True)
+    server.answer(OK)
+    posts = poster(server)
+    with pytest.raises(httpx.RemoteProtocolError, match=words):
+        posts.post("/x", b"", "text/plain")
+    assert posts.post("/x", b"", "text/plain") == (200, b'{"a":1}')  # a fresh connection
+
+
+def test_no_answer_is_a_read_timeout_and_no_server_a_connect_error(server: Scripted) -> None:
+    server.answer(b"HTTP/1.1 200 OK\r\n")  # the head never ends
+    with pytest.raises(httpx.ReadTimeout):
+        poster(server, timeout=0.3).post("/x", b"", "text/plain")
+    gone = UnixPoster(str(server.path) + ".missing", "keepset", {}, 1.0)
+    with pytest.raises(httpx.ConnectError):
+        gone.post("/x", b"", "text/plain")
+
+
+def test_a_key_with_a_line_break_is_refused() -> None:
+    with pytest.raises(ValueError, match="line break"):
+        UnixPoster("/nowhere", "keepset", {"Authorization": "Bearer a\r\nX-Admin: 1"}, 1.0)
+
+
+@settings(max_examples=40, deadline=None)
+@given(cuts=st.lists(st.integers(min_value=1, max_value=300), max_size=12), chunked=st.booleans())
+def test_answers_split_anywhere_read_the_same(cuts: list[int], chunked: bool) -> None:
+    body = b'{"rows": [' + b'{"token": 7, "kept": 50}, ' * 20 + b"{}]}"
+    if chunked:
+        answer = b"HTTP/1.1 200 OK\r\ntransfer-encoding: chunked\r\n\r\n"
+        answer += b"".join(b"%x\r\n%s\r\n" % (len(p), p) for p in (body[:100], body[100:]))
+        answer += b"0\r\n\r\n"
+    else:
+        answer = b"HTTP/1.1 200 OK\r\ncontent-length: %d\r\n\r\n%s" % (len(body), body)
+    pieces, at = [], 0
+    for cut in cuts:
+        pieces.append(answer[at : at + cut])
+        at += cut
+    pieces.append(answer[at:])
+    folder = Path(tempfile.mkdtemp(prefix="ks-posts-", dir="/tmp"))
+    scripted = Scripted(folder / "s.sock")
+    try:
+        scripted.answer([p for p in pieces if p])
+        posts = poster(scripted)
+        assert posts.post("/x", b"", "text/plain") == (200, body)
+        posts.close()
+    finally:
+        scripted.close()
+        shutil.rmtree(folder)

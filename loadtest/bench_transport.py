@@ -15,6 +15,7 @@ repeats of each repeat's median, and the ratios are taken per repeat. Servers ru
 and Unix sockets in a temporary folder only, with one worker each; everything is bounded.
 
     .venv/bin/python loadtest/bench_transport.py [--repeats 5] [--steps 8] [--quick]
+        [--only 32x128256] [--transports "shm in place"]
 """
 
 from __future__ import annotations
@@ -55,9 +56,19 @@ def main() -> int:
     parser.add_argument("--repeats", type=int, default=5)
     parser.add_argument("--steps", type=int, default=8)
     parser.add_argument("--quick", action="store_true", help="2 repeats of 3 steps")
+    parser.add_argument(
+        "--only", nargs="+", metavar="BxV", help="these sizes only, e.g. 32x128256 (all by default)"
+    )
+    parser.add_argument(
+        "--transports", nargs="+", choices=TRANSPORTS, help="these transports only (all by default)"
+    )
     parser.add_argument("--out", type=Path, default=Path("loadtest/results/transport.json"))
     args = parser.parse_args()
     repeats, steps = (2, 3) if args.quick else (args.repeats, args.steps)
+    sizes = [(b, v) for b, v in SIZES if not args.only or f"{b}x{v}" in args.only]
+    transports = [t for t in TRANSPORTS if not args.transports or t in args.transports]
+    if not sizes:
+        parser.error(f"--only names none of {[f'{b}x{v}' for b, v in SIZES]}")
     # Segments live in memory, as they would in a pod's memory-backed emptyDir.
     memory = "/dev/shm" if Path("/dev/shm").is_dir() else None
     work = Path(tempfile.mkdtemp(prefix="keepset-bench-", dir=memory))
@@ -89,7 +100,7 @@ def main() -> int:
     clients["shm in place"] = clients["shm"]
     batches = {
         (b, v): (np.random.default_rng(v + b).standard_normal((b, v)) * 3).astype(np.float32)
-        for b, v in SIZES
+        for b, v in sizes
     }
     # The in-place blocks, written once before any timing (the model's own write).
     blocks: dict[tuple[int, int, int], SharedLogits] = {}
@@ -107,7 +118,7 @@ def main() -> int:
         for _ in range(repeats):
             for size, logits in batches.items():
                 pick_ms[size].append(in_process_ms(logits, count=max(20, steps)))
-                for name in TRANSPORTS:
+                for name in transports:
                     ks, floor = clients[name]
                     if name == "shm in place":
                         k = step_ms(ks, blocks[(*size, 0)], steps)
@@ -134,8 +145,8 @@ def main() -> int:
         f"{'ratio':>6} {'pick ms':>8} {'step/pick':>9} {'keepset-floor-pick ms':>21}"
     )
     results = []
-    for b, v in SIZES:
-        for name in TRANSPORTS:
+    for b, v in sizes:
+        for name in transports:
             key = (b, v, name)
             k, f, r, p, o = (
                 med(keepset_ms[key]),

@@ -89,9 +89,8 @@ class Admission:
                 await self.app(scope, receive, send_and_note)
             finally:
                 live.in_flight -= 1
-        metrics.REQUEST_DURATION.labels(endpoint_label(path), str(status[0])).observe(
-            time.perf_counter() - started
-        )
+        duration = metrics.series(metrics.REQUEST_DURATION, endpoint_label(path), str(status[0]))
+        duration.observe(time.perf_counter() - started)
 
 
 def too_large_body(live: Live) -> Problem:

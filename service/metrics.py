@@ -9,11 +9,13 @@ only ever carry configured names (clients, policies, arms, endpoints), never req
 
 from __future__ import annotations
 
+import functools
 import os
 import re
 from bisect import bisect_left
 from collections import Counter as Tally
 from collections.abc import Sequence
+from typing import Any
 
 from prometheus_client import (
     CONTENT_TYPE_LATEST,
@@ -153,14 +155,23 @@ def observe_rows(
 ) -> None:
     """Record one batch of sampled rows for a served or shadow policy version."""
     v = str(version)
-    observe_all(KEPT_TOKENS.labels(policy, v, role), kept)
+    observe_all(series(KEPT_TOKENS, policy, v, role), kept)
     if role != "served":
         return
-    ROWS.labels(client, policy, v, arm).inc(len(kept))
-    observe_all(ENTROPY.labels(policy, v), entropy)
+    series(ROWS, client, policy, v, arm).inc(len(kept))
+    observe_all(series(ENTROPY, policy, v), entropy)
     for reason in fallback:
         if reason is not None:
-            FALLBACKS.labels(policy, v, reason).inc()
+            series(FALLBACKS, policy, v, reason).inc()
+
+
+@functools.lru_cache(maxsize=4096)
+def series(metric: Counter | Gauge | Histogram, *values: str) -> Any:
+    """``metric.labels(*values)``, remembered. prometheus_client checks the values and takes
+    a lock on every call (about 5 µs), and a pick labels five series; keepset never removes
+    a labelled series, so the remembered child stays the one exported. The label sets are
+    bounded by the registry and routes (as every metric's here), the cache by its size."""
+    return metric.labels(*values)
 
 
 def observe_all(histogram: Histogram, values: Sequence[float]) -> None:

@@ -100,6 +100,8 @@ def choose_arm(
     client: str, routing_key: str | None, arms: Sequence[Arm], rng: random.Random
 ) -> int:
     """Index of the arm serving this request."""
+    if len(arms) == 1:  # no split: nothing to hash
+        return 0
     total = sum(a.weight for a in arms)
     point = (
         stable_point(client, routing_key, total)

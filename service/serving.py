@@ -55,7 +55,7 @@ def serve(
     arm_index = choose_arm(client, routing_key, route.arms, live.rng)
     arm = route.arms[arm_index]
     # Counted at assignment, before anything can fail: the split's unit is the request.
-    metrics.ASSIGNMENTS.labels(client, arm.public_label(arm_index)).inc()
+    metrics.series(metrics.ASSIGNMENTS, client, arm.public_label(arm_index)).inc()
     policy = snapshot.policy(arm.policy)
     chain = snapshot.chain(arm.policy)
     clamped: list[str] = []

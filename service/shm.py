@@ -208,7 +208,8 @@ def read_segment(
         )
     count = math.prod(ref.shape)
     nbytes = count * storage.itemsize
-    mapping, skip = _map_window(folder / name, name, ref.offset, nbytes, maps)
+    # A plain string: pathlib's / would build and parse a Path on every request.
+    mapping, skip = _map_window(os.path.join(folder, name), name, ref.offset, nbytes, maps)
     own = mapping if maps is None else None  # the request's to close, or the maps' to keep
     view = np.frombuffer(mapping, dtype=storage, count=count, offset=skip)
     view = view.reshape(ref.shape)
@@ -225,7 +226,7 @@ _MAP_FLAGS = mmap.MAP_SHARED | getattr(mmap, "MAP_POPULATE", 0)
 
 
 def _map_window(
-    path: Path, name: str, offset: int, nbytes: int, maps: SegmentMaps | None
+    path: str, name: str, offset: int, nbytes: int, maps: SegmentMaps | None
 ) -> tuple[mmap.mmap, int]:
     """A read-only mapping that holds ``offset`` to ``offset + nbytes`` (the whole file from
     ``maps``, else just that window, its start rounded down to the allocation granularity),

@@ -160,6 +160,27 @@ def test_mappings_are_kept_for_reuse_and_let_go_when_their_file_goes(
     assert str(gone) not in mapped_paths(pid)
 
 
+def test_a_kept_mapping_is_checked_before_reuse(shm_server: Server, shm_dir: Path) -> None:
+    """A kept mapping is reused only while its name is the same regular file at the same
+    size: a file cut short in place, or a name swapped for a link to that very file, gets the
+    problem a first request would get."""
+    rows = np.random.default_rng(12).standard_normal((2, V)).astype(np.float32)
+    path = write_segment(shm_dir, "checked", rows, offset=0)
+    descriptor = {"segment": "checked", "shape": [2, V]}
+    assert shm_pick(shm_server, descriptor).status_code == 200
+    assert str(path) in mapped_paths(shm_server.process.pid)
+    os.truncate(path, rows.nbytes // 2)
+    assert_problem(shm_pick(shm_server, descriptor), 400, "runs past its end")
+    path.write_bytes(rows.tobytes())
+    assert shm_pick(shm_server, descriptor).status_code == 200
+    target = path.rename(shm_dir / "checked.target")
+    path.symlink_to(target)
+    assert_problem(shm_pick(shm_server, descriptor), 400, "symbolic link")
+    path.unlink()
+    target.rename(path)
+    assert shm_pick(shm_server, descriptor).status_code == 200
+
+
 def test_mappings_kept_are_bounded(shm_dir: Path) -> None:
     # At most ``limit`` mappings stay open; the least recently used goes first.
     from service.shm import SegmentMaps, ShmRef, read_segment

@@ -40,7 +40,7 @@ from numpy.typing import NDArray
 from service.dtypes import WireDtype, to_wire
 from service.npy import to_npy
 from service.shm import Segment
-from service.unix_posts import UnixPoster
+from service.unix_posts import AsyncUnixPoster, UnixPoster
 
 NPY_MEDIA = "application/x-npy"
 _Frozen = TypeVar("_Frozen")
@@ -532,8 +532,22 @@ class AsyncClient(_Connection):
     ) -> PickReply:
         request = (logits, seed, routing_key, history, adjust)
         with _pick_post(self._segments, self._dtype, *request) as post:
-            response = await self._http.post("/v1/pick", **post)
-        return _reply(response)
+            if self._uds is None:
+                response = await self._http.post("/v1/pick", **post)
+            else:
+                status, body = await self._unix.post(*_plain_post("/v1/pick", post))
+        if self._uds is None:
+            return _reply(response)
+        if status != 200:
+            raise _error(status, body)
+        return PickReply.from_json(orjson.loads(body))
+
+    @functools.cached_property
+    def _unix(self) -> AsyncUnixPoster:
+        """Picks over the Unix socket skip httpx (see ``unix_posts``); the rest use it."""
+        assert self._uds is not None
+        host = httpx.URL(self._options["base_url"]).host or "localhost"
+        return AsyncUnixPoster(self._uds, host, self._options["headers"], self._options["timeout"])
 
     async def continue_prompt(
         self,
@@ -583,6 +597,8 @@ class AsyncClient(_Connection):
         """Close the connections and remove the client's segments."""
         if "_http" in self.__dict__:
             await self._http.aclose()
+        if "_unix" in self.__dict__:
+            await self._unix.aclose()
         if self._segments is not None:
             self._segments.close()
 

@@ -17,10 +17,14 @@ sent on a dead connection and never needs to be sent twice.
 
 from __future__ import annotations
 
+import asyncio
+import contextlib
 import select
 import socket
 import threading
-from collections.abc import Mapping
+from collections.abc import Generator, Mapping
+from dataclasses import dataclass
+from typing import Any
 
 # An answer's status line and headers; keepset's are a few hundred bytes.
 MAX_HEAD_BYTES = 64 * 1024
@@ -33,101 +37,115 @@ class ProtocolError(Exception):
     """The server's answer is not HTTP/1.1 as this module reads it."""
 
 
-class _Answer:
-    """Reads one answer from a connected socket, keeping what arrives past it."""
+# What a reader yields to ask for more bytes, and is sent back: b"" when the stream has ended.
+Reader = Generator[None, bytes, "Answer"]
 
-    def __init__(self, sock: socket.socket):
-        self._sock = sock
-        self._buffer = bytearray()
 
-    def read(self) -> tuple[int, bytes, bool]:
-        """(status, body, whether the server keeps the connection open)."""
-        while True:
-            status, headers = self._head()
-            if not 100 <= status < 200:  # interim answers (100 Continue) come before the real one
-                break
-        keep = headers.get("connection", "").lower() != "close"
-        if status in (204, 304):
-            return status, b"", keep
-        if "chunked" in headers.get("transfer-encoding", "").lower():
-            return status, self._chunked(), keep
-        length = headers.get("content-length")
-        if length is None:
-            return status, self._to_close(), False
-        if not length.isdigit():
-            raise ProtocolError(f"bad Content-Length {length[:40]!r}")
-        return status, self._exactly(int(length)), keep
+@dataclass(frozen=True)
+class Answer:
+    status: int
+    body: bytes
+    # The server keeps the connection open, and nothing arrived past this answer.
+    reusable: bool
 
-    def leftover(self) -> bool:
-        return bool(self._buffer)
 
-    def _fill(self) -> bool:
-        """Receive more; False at the end of the stream."""
-        data = self._sock.recv(_READ_BYTES)
-        if not data:
-            return False
-        self._buffer += data
-        return True
+def read_answer() -> Reader:
+    """Read one answer from bytes sent in as they arrive (no I/O here: the sync and the async
+    poster each feed it from their own socket)."""
+    buffer = bytearray()
 
-    def _line(self, limit: int) -> bytes:
-        while (end := self._buffer.find(b"\r\n")) < 0:
-            if len(self._buffer) > limit or not self._fill():
+    def more() -> Generator[None, bytes, bool]:
+        data = yield
+        buffer.extend(data)
+        return bool(data)
+
+    def line() -> Generator[None, bytes, bytes]:
+        while (end := buffer.find(b"\r\n")) < 0:
+            if len(buffer) > MAX_HEAD_BYTES or not (yield from more()):
                 raise ProtocolError("the answer ended inside a line")
-        line = bytes(self._buffer[:end])
-        del self._buffer[: end + 2]
-        return line
+        found = bytes(buffer[:end])
+        del buffer[: end + 2]
+        return found
 
-    def _head(self) -> tuple[int, dict[str, str]]:
-        while (end := self._buffer.find(b"\r\n\r\n")) < 0:
-            if len(self._buffer) > MAX_HEAD_BYTES:
+    def exactly(size: int) -> Generator[None, bytes, bytes]:
+        while len(buffer) < size:
+            if not (yield from more()):
+                raise ProtocolError(f"the answer ended {size - len(buffer)} bytes short")
+        found = bytes(buffer[:size])
+        del buffer[:size]
+        return found
+
+    while True:
+        while (end := buffer.find(b"\r\n\r\n")) < 0:
+            if len(buffer) > MAX_HEAD_BYTES:
                 raise ProtocolError(f"the answer's head is over {MAX_HEAD_BYTES} bytes")
-            if not self._fill():
+            if not (yield from more()):
                 raise ProtocolError("the server closed the connection before an answer")
-        head = bytes(self._buffer[:end]).decode("latin-1")
-        del self._buffer[: end + 4]
-        status_line, *lines = head.split("\r\n")
-        version, _, rest = status_line.partition(" ")
-        code = rest[:3]
-        if not version.startswith("HTTP/1.") or not code.isdigit():
-            raise ProtocolError(f"not an HTTP/1.1 status line: {status_line[:80]!r}")
-        headers: dict[str, str] = {}
-        for line in lines:
-            name, colon, value = line.partition(":")
-            if not colon:
-                raise ProtocolError(f"not a header line: {line[:80]!r}")
-            headers[name.strip().lower()] = value.strip()
-        return int(code), headers
-
-    def _exactly(self, size: int) -> bytes:
-        while len(self._buffer) < size:
-            if not self._fill():
-                raise ProtocolError(f"the answer ended {size - len(self._buffer)} bytes short")
-        body = bytes(self._buffer[:size])
-        del self._buffer[:size]
-        return body
-
-    def _chunked(self) -> bytes:
+        status, headers = _head(bytes(buffer[:end]))
+        del buffer[: end + 4]
+        if not 100 <= status < 200:  # interim answers (100 Continue) come before the real one
+            break
+    keep = headers.get("connection", "").lower() != "close"
+    if status in (204, 304):
+        return Answer(status, b"", keep and not buffer)
+    if "chunked" in headers.get("transfer-encoding", "").lower():
         parts: list[bytes] = []
         while True:
-            size_text = self._line(MAX_HEAD_BYTES).split(b";")[0].strip()
+            size_text = (yield from line()).split(b";")[0].strip()
             try:
                 size = int(size_text, 16)
             except ValueError:
                 raise ProtocolError(f"bad chunk size {size_text[:40]!r}") from None
             if size == 0:
-                while self._line(MAX_HEAD_BYTES):  # trailers, up to the empty line
+                while (yield from line()):  # trailers, up to the empty line
                     pass
-                return b"".join(parts)
-            parts.append(self._exactly(size))
-            if self._exactly(2) != b"\r\n":
+                return Answer(status, b"".join(parts), keep and not buffer)
+            parts.append((yield from exactly(size)))
+            if (yield from exactly(2)) != b"\r\n":
                 raise ProtocolError("a chunk does not end with CRLF")
-
-    def _to_close(self) -> bytes:
-        while self._fill():
+    length = headers.get("content-length")
+    if length is None:  # the body runs to the close
+        while (yield from more()):
             pass
-        body = bytes(self._buffer)
-        self._buffer.clear()
-        return body
+        return Answer(status, bytes(buffer), False)
+    if not length.isdigit():
+        raise ProtocolError(f"bad Content-Length {length[:40]!r}")
+    body = yield from exactly(int(length))
+    return Answer(status, body, keep and not buffer)
+
+
+def _head(raw: bytes) -> tuple[int, dict[str, str]]:
+    status_line, *lines = raw.decode("latin-1").split("\r\n")
+    version, _, rest = status_line.partition(" ")
+    code = rest[:3]
+    if not version.startswith("HTTP/1.") or not code.isdigit():
+        raise ProtocolError(f"not an HTTP/1.1 status line: {status_line[:80]!r}")
+    headers: dict[str, str] = {}
+    for header in lines:
+        name, colon, value = header.partition(":")
+        if not colon:
+            raise ProtocolError(f"not a header line: {header[:80]!r}")
+        headers[name.strip().lower()] = value.strip()
+    return int(code), headers
+
+
+def _request_head(target: str, fixed: bytes, content_type: str, length: int) -> bytes:
+    return (
+        f"POST {target} HTTP/1.1\r\n".encode("latin-1")
+        + fixed
+        + f"Content-Type: {content_type}\r\nContent-Length: {length}\r\n\r\n".encode("latin-1")
+    )
+
+
+def _receive(sock: socket.socket) -> Answer:
+    reader = read_answer()
+    next(reader)
+    try:
+        while True:
+            reader.send(sock.recv(_READ_BYTES))
+    except StopIteration as done:
+        answer: Answer = done.value
+        return answer
 
 
 def _connect(path: str, timeout: float) -> socket.socket:
@@ -141,7 +159,7 @@ def _connect(path: str, timeout: float) -> socket.socket:
     return sock
 
 
-def _closed_by_peer(sock: socket.socket) -> bool:
+def _closed_by_peer(sock: Any) -> bool:
     """True when the server has closed (or written unasked to) the kept connection."""
     # poll, not select: select refuses descriptors above 1023, common in a busy server.
     poller = select.poll()
@@ -173,13 +191,7 @@ class UnixPoster:
         RemoteProtocolError when the exchange fails."""
         import httpx  # the client's exception family; imported here to keep this module light
 
-        head = (
-            f"POST {target} HTTP/1.1\r\n".encode("latin-1")
-            + self._fixed
-            + f"Content-Type: {content_type}\r\nContent-Length: {len(body)}\r\n\r\n".encode(
-                "latin-1"
-            )
-        )
+        head = _request_head(target, self._fixed, content_type, len(body))
         sock = None
         try:
             sock = self._connection()
@@ -188,8 +200,7 @@ class UnixPoster:
             else:
                 sock.sendall(head)
                 sock.sendall(body)
-            answer = _Answer(sock)
-            status, data, keep = answer.read()
+            answer = _receive(sock)
         except (FileNotFoundError, ConnectionRefusedError) as exc:
             self._drop(sock)
             raise httpx.ConnectError(f"cannot connect to {self._path}: {exc}") from exc
@@ -200,9 +211,9 @@ class UnixPoster:
             self._drop(sock)
             message = f"the exchange with {self._path} failed: {exc}"
             raise httpx.RemoteProtocolError(message) from exc
-        if not keep or answer.leftover():
+        if not answer.reusable:
             self._drop(sock)
-        return status, data
+        return answer.status, answer.body
 
     def close(self) -> None:
         with self._lock:
@@ -231,3 +242,95 @@ class UnixPoster:
         with self._lock:
             if sock in self._all:
                 self._all.remove(sock)
+
+
+class AsyncUnixPoster:
+    """:class:`UnixPoster` for asyncio: idle connections wait in a pool, and each request
+    takes one (or opens one) for itself, so requests in flight together never share one."""
+
+    def __init__(self, path: str, host: str, headers: Mapping[str, str], timeout: float):
+        self._path, self._timeout = path, timeout
+        self._fixed = _header_lines(host, headers)
+        self._idle: list[tuple[asyncio.StreamReader, asyncio.StreamWriter]] = []
+
+    async def post(self, target: str, body: bytes, content_type: str) -> tuple[int, bytes]:
+        """(status, body) of ``POST target``; httpx's ConnectError, ReadTimeout or
+        RemoteProtocolError when the exchange fails."""
+        import httpx
+
+        head = _request_head(target, self._fixed, content_type, len(body))
+        writer = None
+        try:
+            async with asyncio.timeout(self._timeout):
+                reader, writer = await self._connection()
+                if len(body) < _JOIN_BELOW:
+                    writer.write(head + body)
+                else:
+                    writer.writelines((head, body))
+                await writer.drain()
+                answer = await _areceive(reader)
+        except (FileNotFoundError, ConnectionRefusedError) as exc:
+            _close(writer)
+            raise httpx.ConnectError(f"cannot connect to {self._path}: {exc}") from exc
+        except TimeoutError as exc:
+            _close(writer)
+            raise httpx.ReadTimeout(f"no answer within {self._timeout} s") from exc
+        except (OSError, ProtocolError) as exc:
+            _close(writer)
+            message = f"the exchange with {self._path} failed: {exc}"
+            raise httpx.RemoteProtocolError(message) from exc
+        except BaseException:  # cancelled mid-exchange: the connection's state is unknown
+            _close(writer)
+            raise
+        if answer.reusable:
+            self._idle.append((reader, writer))
+        else:
+            _close(writer)
+        return answer.status, answer.body
+
+    async def aclose(self) -> None:
+        idle, self._idle = self._idle, []
+        for _, writer in idle:
+            writer.close()
+        for _, writer in idle:
+            with contextlib.suppress(OSError):
+                await writer.wait_closed()
+
+    async def _connection(self) -> tuple[asyncio.StreamReader, asyncio.StreamWriter]:
+        while self._idle:
+            reader, writer = self._idle.pop()
+            # The server's close (or stray bytes) on an idle connection, whether the loop has
+            # read it yet (the reader) or not (the socket itself).
+            sock = writer.get_extra_info("socket")
+            if (
+                reader.at_eof()
+                or writer.is_closing()
+                or _has_unread(reader)
+                or sock is None
+                or _closed_by_peer(sock)
+            ):
+                writer.close()
+                continue
+            return reader, writer
+        return await asyncio.open_unix_connection(self._path, limit=_READ_BYTES)
+
+
+def _has_unread(reader: asyncio.StreamReader) -> bool:
+    # An idle connection must have nothing to read; StreamReader has no public way to ask.
+    return bool(getattr(reader, "_buffer", b""))
+
+
+def _close(writer: asyncio.StreamWriter | None) -> None:
+    if writer is not None:
+        writer.close()
+
+
+async def _areceive(reader: asyncio.StreamReader) -> Answer:
+    answer = read_answer()
+    next(answer)
+    try:
+        while True:
+            answer.send(await reader.read(_READ_BYTES))
+    except StopIteration as done:
+        result: Answer = done.value
+        return result

@@ -1,12 +1,13 @@
-"""The sync client's hand-written HTTP/1.1 exchange over a Unix socket, against a scripted server
-on a real socket: the request bytes it writes, each form of answer body HTTP/1.1 allows
-(RFC 9112 section 6: Content-Length, chunked, up to the close), interim answers, connection
-reuse and replacement, and every broken answer as httpx's RemoteProtocolError, never a hang or
-a wrong body. Answers arrive split at arbitrary points (hypothesis), as a stream socket may
-deliver them."""
+"""The clients' hand-written HTTP/1.1 exchange over a Unix socket, sync and asyncio, against a
+scripted server on a real socket: the request bytes it writes, each form of answer body
+HTTP/1.1 allows (RFC 9112 section 6: Content-Length, chunked, up to the close), interim
+answers, connection reuse and replacement, and every broken answer as httpx's
+RemoteProtocolError, never a hang or a wrong body. Answers arrive split at arbitrary points
+(hypothesis), as a stream socket may deliver them."""
 
 from __future__ import annotations
 
+import asyncio
 import contextlib
 import shutil
 import socket
@@ -20,7 +21,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from service.unix_posts import UnixPoster
+from service.unix_posts import AsyncUnixPoster, UnixPoster
 
 
 class Scripted:
@@ -96,35 +97,67 @@ def server() -> Iterator[Scripted]:
     shutil.rmtree(folder)
 
 
-def poster(server: Scripted, timeout: float = 5.0) -> UnixPoster:
-    return UnixPoster(str(server.path), "keepset", {"Authorization": "Bearer k-1"}, timeout)
+Call = tuple[str, bytes, str]
+Result = tuple[int, bytes] | Exception
+PLAIN: Call = ("/x", b"", "text/plain")
+KINDS = pytest.mark.parametrize("kind", ["sync", "async"])
+
+
+def run_posts(kind: str, server: Scripted, calls: list[Call], timeout: float = 5.0) -> list[Result]:
+    """``calls`` one after another through one poster of ``kind`` (the async one in one event
+    loop, as a client's connections live in theirs); each answer or exception, in order."""
+    headers = {"Authorization": "Bearer k-1"}
+    out: list[Result] = []
+    if kind == "sync":
+        posts = UnixPoster(str(server.path), "keepset", headers, timeout)
+        for call in calls:
+            try:
+                out.append(posts.post(*call))
+            except Exception as exc:
+                out.append(exc)
+        posts.close()
+        return out
+
+    async def in_one_loop() -> list[Result]:
+        posts = AsyncUnixPoster(str(server.path), "keepset", headers, timeout)
+        for call in calls:
+            try:
+                out.append(await posts.post(*call))
+            except Exception as exc:
+                out.append(exc)
+        await posts.aclose()
+        return out
+
+    return asyncio.run(in_one_loop())
 
 
 OK = b'HTTP/1.1 200 OK\r\ncontent-length: 7\r\ncontent-type: application/json\r\n\r\n{"a":1}'
+ANSWERED = (200, b'{"a":1}')
 
 
-def test_request_bytes_and_a_kept_connection(server: Scripted) -> None:
+@KINDS
+def test_request_bytes_and_a_kept_connection(kind: str, server: Scripted) -> None:
     server.answer(OK)
     server.answer(OK)
-    posts = poster(server)
-    assert posts.post("/v1/pick", b"{}", "application/json") == (200, b'{"a":1}')
-    assert posts.post("/v1/pick", b"[1]", "application/json") == (200, b'{"a":1}')
+    calls = [("/v1/pick", b"{}", "application/json"), ("/v1/pick", b"[1]", "application/json")]
+    assert run_posts(kind, server, calls) == [ANSWERED, ANSWERED]
     assert server.connections == 1
     assert server.requests[0] == (
         b"POST /v1/pick HTTP/1.1\r\nHost: keepset\r\nAuthorization: Bearer k-1\r\n"
         b"Content-Type: application/json\r\nContent-Length: 2\r\n\r\n{}"
     )
-    posts.close()
 
 
-def test_a_large_body_arrives_whole(server: Scripted) -> None:
+@KINDS
+def test_a_large_body_arrives_whole(kind: str, server: Scripted) -> None:
     body = bytes(range(256)) * 4096  # 1 MiB: written after the head, not joined to it
     server.answer(OK)
-    assert poster(server).post("/v1/pick", body, "application/x-npy")[0] == 200
+    assert run_posts(kind, server, [("/v1/pick", body, "application/x-npy")]) == [ANSWERED]
     assert server.requests[0].endswith(b"\r\n\r\n" + body)
 
 
-def test_chunked_interim_and_until_close_bodies(server: Scripted) -> None:
+@KINDS
+def test_chunked_interim_and_until_close_bodies(kind: str, server: Scripted) -> None:
     chunked = (
         b"HTTP/1.1 200 OK\r\nTransfer-Encoding: chunked\r\n\r\n"
         b"4;ext=1\r\nkeep\r\n4\r\nset \r\nE\r\nrows\r\n\r\nwhole.\r\n0\r\nX-Tail: 1\r\n\r\n"
@@ -133,30 +166,29 @@ def test_chunked_interim_and_until_close_bodies(server: Scripted) -> None:
     server.answer(b"HTTP/1.1 100 Continue\r\n\r\n" + OK)
     server.answer(b"HTTP/1.1 200 OK\r\nconnection: close\r\n\r\nto the end", close=True)
     server.answer(b"HTTP/1.1 204 No Content\r\n\r\n")
-    posts = poster(server)
     # Sizes worked by hand: 4 + 4 + 0xE (14: "rows", CRLF CRLF, "whole."), a chunk extension
     # and a trailer, both to be skipped.
-    assert posts.post("/x", b"", "text/plain") == (200, b"keepset rows\r\n\r\nwhole.")
-    assert posts.post("/x", b"", "text/plain") == (200, b'{"a":1}')
-    assert posts.post("/x", b"", "text/plain") == (200, b"to the end")
-    assert posts.post("/x", b"", "text/plain") == (204, b"")
+    assert run_posts(kind, server, [PLAIN] * 4) == [
+        (200, b"keepset rows\r\n\r\nwhole."),
+        ANSWERED,
+        (200, b"to the end"),
+        (204, b""),
+    ]
     assert server.connections == 2  # the body that ran to the close needed a new connection
 
 
-def test_connection_close_header_and_a_closed_kept_connection(server: Scripted) -> None:
-    server.answer(
-        b"HTTP/1.1 200 OK\r\nContent-Length: 2\r\nConnection: close\r\n\r\nhi", close=True
-    )
+@KINDS
+def test_connection_close_header_and_a_closed_kept_connection(kind: str, server: Scripted) -> None:
+    said = b"HTTP/1.1 200 OK\r\nContent-Length: 2\r\nConnection: close\r\n\r\nhi"
+    server.answer(said, close=True)
     server.answer(OK, close=True)  # closed by the server after answering, without saying so
     server.answer(OK)
-    posts = poster(server)
-    assert posts.post("/x", b"", "text/plain") == (200, b"hi")
-    assert posts.post("/x", b"", "text/plain") == (200, b'{"a":1}')
     # The server closed the kept connection: noticed before sending, so the request is sent once.
-    assert posts.post("/x", b"", "text/plain") == (200, b'{"a":1}')
+    assert run_posts(kind, server, [PLAIN] * 3) == [(200, b"hi"), ANSWERED, ANSWERED]
     assert (server.connections, len(server.requests)) == (3, 3)
 
 
+@KINDS
 @pytest.mark.parametrize(
     "answer, words",
     [
@@ -171,32 +203,41 @@ def test_connection_close_header_and_a_closed_kept_connection(server: Scripted) 
         (b"HTTP/1.1 200 OK\r\nX-Big: " + b"a" * 70_000, "over 65536"),
     ],
 )
-def test_broken_answers_are_protocol_errors(server: Scripted, answer: bytes, words: str) -> None:
+def test_broken_answers_are_protocol_errors(
+    kind: str, server: Scripted, answer: bytes, words: str
+) -> None:
     server.answer(answer, close=True)
     server.answer(OK)
-    posts = poster(server)
-    with pytest.raises(httpx.RemoteProtocolError, match=words):
-        posts.post("/x", b"", "text/plain")
-    assert posts.post("/x", b"", "text/plain") == (200, b'{"a":1}')  # a fresh connection
+    broken, fresh = run_posts(kind, server, [PLAIN, PLAIN])
+    assert isinstance(broken, httpx.RemoteProtocolError) and words in str(broken), broken
+    assert fresh == ANSWERED  # on a fresh connection
 
 
-def test_no_answer_is_a_read_timeout_and_no_server_a_connect_error(server: Scripted) -> None:
+@KINDS
+def test_no_answer_is_a_read_timeout_and_no_server_a_connect_error(
+    kind: str, server: Scripted
+) -> None:
     server.answer(b"HTTP/1.1 200 OK\r\n")  # the head never ends
-    with pytest.raises(httpx.ReadTimeout):
-        poster(server, timeout=0.3).post("/x", b"", "text/plain")
-    gone = UnixPoster(str(server.path) + ".missing", "keepset", {}, 1.0)
-    with pytest.raises(httpx.ConnectError):
-        gone.post("/x", b"", "text/plain")
+    [late] = run_posts(kind, server, [PLAIN], timeout=0.3)
+    assert isinstance(late, httpx.ReadTimeout), late
+    server.path.unlink()  # nobody listens at the path any more
+    [gone] = run_posts(kind, server, [PLAIN])
+    assert isinstance(gone, httpx.ConnectError), gone
 
 
-def test_a_key_with_a_line_break_is_refused() -> None:
+@pytest.mark.parametrize("poster", [UnixPoster, AsyncUnixPoster])
+def test_a_key_with_a_line_break_is_refused(poster: type) -> None:
     with pytest.raises(ValueError, match="line break"):
-        UnixPoster("/nowhere", "keepset", {"Authorization": "Bearer a\r\nX-Admin: 1"}, 1.0)
+        poster("/nowhere", "keepset", {"Authorization": "Bearer a\r\nX-Admin: 1"}, 1.0)
 
 
 @settings(max_examples=40, deadline=None)
-@given(cuts=st.lists(st.integers(min_value=1, max_value=300), max_size=12), chunked=st.booleans())
-def test_answers_split_anywhere_read_the_same(cuts: list[int], chunked: bool) -> None:
+@given(
+    cuts=st.lists(st.integers(min_value=1, max_value=300), max_size=12),
+    chunked=st.booleans(),
+    kind=st.sampled_from(["sync", "async"]),
+)
+def test_answers_split_anywhere_read_the_same(cuts: list[int], chunked: bool, kind: str) -> None:
     body = b'{"rows": [' + b'{"token": 7, "kept": 50}, ' * 20 + b"{}]}"
     if chunked:
         answer = b"HTTP/1.1 200 OK\r\ntransfer-encoding: chunked\r\n\r\n"
@@ -213,9 +254,7 @@ def test_answers_split_anywhere_read_the_same(cuts: list[int], chunked: bool) ->
     scripted = Scripted(folder / "s.sock")
     try:
         scripted.answer([p for p in pieces if p])
-        posts = poster(scripted)
-        assert posts.post("/x", b"", "text/plain") == (200, body)
-        posts.close()
+        assert run_posts(kind, scripted, [PLAIN]) == [(200, body)]
     finally:
         scripted.close()
         shutil.rmtree(folder)

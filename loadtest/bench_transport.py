@@ -3,12 +3,13 @@
 Transports: TCP with a ``.npy`` body, the Unix socket with a ``.npy`` body, shared memory (the
 client copies the batch into its segment, the small JSON goes over the Unix socket), and shared
 memory in place (the caller's logits are already in the client's ``shared_logits`` block, as
-when a model writes its output there: nothing is copied). A step is one ``Client.pick`` of
-keepset's own client: encoding or writing the segment, the request, the answer. Each
-transport's floor is the bare app of loadtest/floor_app.py reached the same way (same client,
-same body; for shared memory it maps the segment), so keepset / floor is what keepset adds.
-"pick" is the in-process ``pick`` of the same batch with the same chain, and step / pick the
-step's time over it (per repeat, then the median).
+when a model writes its output there: nothing is copied), the last also from the asyncio
+client (``AsyncClient.pick`` awaited step after step). A step is one ``pick`` of keepset's own
+client: encoding or writing the segment, the request, the answer. Each transport's floor is the
+bare app of loadtest/floor_app.py reached the same way (same client, same body; for shared
+memory it maps the segment), so keepset / floor is what keepset adds. "pick" is the in-process
+``pick`` of the same batch with the same chain, and step / pick the step's time over it (per
+repeat, then the median).
 
 Repeats are interleaved (every size and transport once per repeat); the table gives medians over
 repeats of each repeat's median, and the ratios are taken per repeat. Servers run on 127.0.0.1
@@ -21,6 +22,7 @@ and Unix sockets in a temporary folder only, with one worker each; everything is
 from __future__ import annotations
 
 import argparse
+import asyncio
 import os
 import shutil
 import statistics
@@ -34,10 +36,10 @@ from typing import Any
 import numpy as np
 from bench_http import KEY, in_process_ms, start_floor, start_keepset, stop, write_results
 
-from service.client import Client, SharedLogits
+from service.client import AsyncClient, Client, SharedLogits
 
 SIZES = [(1, 32_000), (32, 32_000), (128, 32_000), (1, 128_256), (32, 128_256), (128, 128_256)]
-TRANSPORTS = ("tcp .npy", "uds .npy", "shm", "shm in place")
+TRANSPORTS = ("tcp .npy", "uds .npy", "shm", "shm in place", "async in place")
 MAX_BODY = 96 * 1024 * 1024  # a [128, 128256] float32 .npy is 65.7 MB
 
 
@@ -49,6 +51,23 @@ def step_ms(client: Client, logits: np.ndarray | SharedLogits, steps: int) -> fl
         client.pick(logits, seed=i, routing_key="bench")
         times.append(time.perf_counter() - t0)
     return statistics.median(times) * 1e3
+
+
+def async_step_ms(
+    loop: asyncio.AbstractEventLoop, client: AsyncClient, block: SharedLogits, steps: int
+) -> float:
+    """``step_ms`` for the asyncio client, its steps awaited one after another in ``loop``."""
+
+    async def run() -> float:
+        await client.pick(block, seed=1, routing_key="bench")
+        times = []
+        for i in range(steps):
+            t0 = time.perf_counter()
+            await client.pick(block, seed=i, routing_key="bench")
+            times.append(time.perf_counter() - t0)
+        return statistics.median(times) * 1e3
+
+    return loop.run_until_complete(run())
 
 
 def main() -> int:
@@ -97,7 +116,11 @@ def main() -> int:
             Client(base, KEY, timeout=60, uds=floor_sock, shm_dir=shm_dir),
         ),
     }
-    clients["shm in place"] = clients["shm"]
+    loop = asyncio.new_event_loop()
+    async_clients = (
+        AsyncClient(base, KEY, timeout=60, uds=ks_sock, shm_dir=shm_dir),
+        AsyncClient(base, KEY, timeout=60, uds=floor_sock, shm_dir=shm_dir),
+    )
     batches = {
         (b, v): (np.random.default_rng(v + b).standard_normal((b, v)) * 3).astype(np.float32)
         for b, v in sizes
@@ -119,11 +142,15 @@ def main() -> int:
             for size, logits in batches.items():
                 pick_ms[size].append(in_process_ms(logits, count=max(20, steps)))
                 for name in transports:
-                    ks, floor = clients[name]
-                    if name == "shm in place":
+                    if name == "async in place":
+                        k = async_step_ms(loop, async_clients[0], blocks[(*size, 0)], steps)
+                        f = async_step_ms(loop, async_clients[1], blocks[(*size, 1)], steps)
+                    elif name == "shm in place":
+                        ks, floor = clients["shm"]
                         k = step_ms(ks, blocks[(*size, 0)], steps)
                         f = step_ms(floor, blocks[(*size, 1)], steps)
                     else:
+                        ks, floor = clients[name]
                         k, f = step_ms(ks, logits, steps), step_ms(floor, logits, steps)
                     keepset_ms[(*size, name)].append(k)
                     floor_ms[(*size, name)].append(f)
@@ -135,13 +162,16 @@ def main() -> int:
         for pair in clients.values():
             for client in pair:
                 client.close()
+        for async_client in async_clients:
+            loop.run_until_complete(async_client.aclose())
+        loop.close()
         for proc in (keepset, floor_tcp, floor_uds):
             stop(proc)
         shutil.rmtree(work, ignore_errors=True)
 
     med: Callable[[list[float]], float] = statistics.median
     print(
-        f"{'B':>4} {'V':>7} {'transport':>12} {'keepset ms':>10} {'floor ms':>9} "
+        f"{'B':>4} {'V':>7} {'transport':>14} {'keepset ms':>10} {'floor ms':>9} "
         f"{'ratio':>6} {'pick ms':>8} {'step/pick':>9} {'keepset-floor-pick ms':>21}"
     )
     results = []
@@ -156,7 +186,7 @@ def main() -> int:
                 med(over_pick[key]),
             )
             print(
-                f"{b:>4} {v:>7} {name:>12} {k:>10.2f} {f:>9.2f} {r:>6.2f} {p:>8.2f} "
+                f"{b:>4} {v:>7} {name:>14} {k:>10.2f} {f:>9.2f} {r:>6.2f} {p:>8.2f} "
                 f"{o:>9.2f} {k - f - p:>21.2f}"
             )
             results.append(

@@ -449,7 +449,10 @@ def case_soak(seconds: float) -> dict[str, Any]:
 BOUNDS: dict[str, Callable[[dict[str, Any]], bool]] = {
     "load": lambda r: r["errors"] == 0,
     "reloads": lambda r: r["failed_valid_requests"] == 0 and r["served_after"] == [r["last_good"]],
-    "kill": lambda r: r["rows_counted"] == r["rows_answered"] and r["recovered_s"] < 30,
+    # A worker counts a pick's rows right after writing its answer, with nothing awaited in
+    # between: killed in that fraction of a millisecond, it leaves one answered request (one row
+    # here) uncounted. Any other difference is a row lost or counted twice.
+    "kill": lambda r: 0 <= r["rows_answered"] - r["rows_counted"] <= 1 and r["recovered_s"] < 30,
     "drain": lambda r: r["dropped"] == 0,
     "slow": lambda r: r["errors_during"] == 0 and r["p99_ms_during"] < 5 * r["p99_ms_before"],
     "soak": lambda r: r["errors"] == 0 and r["max_growth_pct"] <= 5.0,

@@ -1,4 +1,5 @@
-"""A Python client for keepset, sync and async, on httpx.
+"""A Python client for keepset, sync and async, on httpx (picks over a Unix socket skip it:
+see ``unix_posts``).
 
     from service.client import Client
     with Client("http://127.0.0.1:8411", key="...") as ks:

@@ -355,6 +355,12 @@ def _error(status: int, body: bytes) -> KeepsetError:
     return KeepsetError(status, problem)
 
 
+def _unix_reply(status: int, body: bytes) -> PickReply:
+    if status != 200:
+        raise _error(status, body)
+    return PickReply.from_json(orjson.loads(body))
+
+
 def _reply(response: httpx.Response) -> PickReply:
     _check(response)
     return PickReply.from_json(response.json())
@@ -405,6 +411,11 @@ class _Connection:
         self._segments = _Segments(self._shm_dir) if self._shm_dir is not None else None
         self._dtype = dtype
 
+    def _unix_options(self) -> tuple[str, str, dict[str, str], float]:
+        assert self._uds is not None
+        host = httpx.URL(self._options["base_url"]).host or "localhost"
+        return self._uds, host, self._options["headers"], self._options["timeout"]
+
     def shared_logits(self, rows: int, vocab: int, dtype: WireDtype | None = None) -> SharedLogits:
         """A block of ``[rows, vocab]`` logits to write in place and pass to ``pick`` (which
         then copies nothing); needs ``shm_dir``. ``dtype`` defaults to the client's, else
@@ -434,22 +445,16 @@ class Client(_Connection):
         request = (logits, seed, routing_key, history, adjust)
         # The answer is read after the block: an error answer must not discard the segment.
         with _pick_post(self._segments, self._dtype, *request) as post:
-            if self._uds is None:
-                response = self._http.post("/v1/pick", **post)
+            if self._uds is not None:
+                answer = self._unix.post(*_plain_post("/v1/pick", post))
             else:
-                status, body = self._unix.post(*_plain_post("/v1/pick", post))
-        if self._uds is None:
-            return _reply(response)
-        if status != 200:
-            raise _error(status, body)
-        return PickReply.from_json(orjson.loads(body))
+                response = self._http.post("/v1/pick", **post)
+        return _unix_reply(*answer) if self._uds is not None else _reply(response)
 
     @functools.cached_property
     def _unix(self) -> UnixPoster:
         """Picks over the Unix socket skip httpx (see ``unix_posts``); the rest use it."""
-        assert self._uds is not None
-        host = httpx.URL(self._options["base_url"]).host or "localhost"
-        return UnixPoster(self._uds, host, self._options["headers"], self._options["timeout"])
+        return UnixPoster(*self._unix_options())
 
     def continue_prompt(
         self,
@@ -532,23 +537,18 @@ class AsyncClient(_Connection):
         adjust: Mapping[str, float] | None = None,
     ) -> PickReply:
         request = (logits, seed, routing_key, history, adjust)
+        # The answer is read after the block: an error answer must not discard the segment.
         with _pick_post(self._segments, self._dtype, *request) as post:
-            if self._uds is None:
-                response = await self._http.post("/v1/pick", **post)
+            if self._uds is not None:
+                answer = await self._unix.post(*_plain_post("/v1/pick", post))
             else:
-                status, body = await self._unix.post(*_plain_post("/v1/pick", post))
-        if self._uds is None:
-            return _reply(response)
-        if status != 200:
-            raise _error(status, body)
-        return PickReply.from_json(orjson.loads(body))
+                response = await self._http.post("/v1/pick", **post)
+        return _unix_reply(*answer) if self._uds is not None else _reply(response)
 
     @functools.cached_property
     def _unix(self) -> AsyncUnixPoster:
         """Picks over the Unix socket skip httpx (see ``unix_posts``); the rest use it."""
-        assert self._uds is not None
-        host = httpx.URL(self._options["base_url"]).host or "localhost"
-        return AsyncUnixPoster(self._uds, host, self._options["headers"], self._options["timeout"])
+        return AsyncUnixPoster(*self._unix_options())
 
     async def continue_prompt(
         self,

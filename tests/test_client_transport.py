@@ -92,6 +92,34 @@ def test_segment_is_reused_and_grows(served: Server, folders: tuple[Path, Path])
     assert not list(shm_dir.iterdir())
 
 
+def test_a_refused_pick_over_the_socket_keeps_the_segment(
+    served: Server, folders: tuple[Path, Path]
+) -> None:
+    """Over the Unix socket too, sync and async: the answer is read after the segment's lease,
+    so a refused pick (422) leaves the segment for the next one."""
+    shm_dir, sock = folders
+    refused = np.full((1, 10), -np.inf, np.float32)
+    with Client("http://keepset", KEY, uds=sock, shm_dir=shm_dir) as ks:
+        ks.pick(batch(1, 100), seed=1)
+        before = sorted(p.name for p in shm_dir.iterdir())
+        with pytest.raises(KeepsetError) as sync_error:
+            ks.pick(refused)
+        assert sync_error.value.status == 422
+        assert sorted(p.name for p in shm_dir.iterdir()) == before
+
+    async def run() -> None:
+        async with AsyncClient("http://keepset", KEY, uds=sock, shm_dir=shm_dir) as ks:
+            await ks.pick(batch(1, 100), seed=1)
+            before = sorted(p.name for p in shm_dir.iterdir())
+            with pytest.raises(KeepsetError) as async_error:
+                await ks.pick(refused)
+            assert async_error.value.status == 422
+            assert sorted(p.name for p in shm_dir.iterdir()) == before
+
+    asyncio.run(run())
+    assert not list(shm_dir.iterdir())
+
+
 def test_a_folder_the_server_does_not_share_is_a_404(served: Server, tmp_path: Path) -> None:
     with Client(served.base_url, KEY, shm_dir=tmp_path) as ks, pytest.raises(KeepsetError) as e:
         ks.pick(batch(1))

@@ -212,6 +212,11 @@ class UnixPoster:
             self._drop(sock)
             message = f"the exchange with {self._path} failed: {exc}"
             raise httpx.RemoteProtocolError(message) from exc
+        except BaseException:
+            # Interrupted mid-exchange (Ctrl-C): the answer may still arrive, and must not be
+            # read as the next request's.
+            self._drop(sock)
+            raise
         if not answer.reusable:
             self._drop(sock)
         return answer.status, answer.body
@@ -280,7 +285,9 @@ class AsyncUnixPoster:
             _close(writer)
             message = f"the exchange with {self._path} failed: {exc}"
             raise httpx.RemoteProtocolError(message) from exc
-        except BaseException:  # cancelled mid-exchange: the connection's state is unknown
+        except BaseException:
+            # Cancelled mid-exchange: the connection never goes back to the pool (its answer
+            # may still arrive); close it now rather than when it is collected.
             _close(writer)
             raise
         if answer.reusable:

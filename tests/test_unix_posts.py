@@ -10,9 +10,11 @@ from __future__ import annotations
 import asyncio
 import contextlib
 import shutil
+import signal
 import socket
 import tempfile
 import threading
+import time
 from collections.abc import Iterator
 from pathlib import Path
 
@@ -30,7 +32,7 @@ class Scripted:
 
     def __init__(self, path: Path):
         self.path = path
-        self.script: list[tuple[list[bytes], bool]] = []
+        self.script: list[tuple[list[bytes | float], bool]] = []
         self.requests: list[bytes] = []
         self.connections = 0
         self._open: list[socket.socket] = []
@@ -41,7 +43,8 @@ class Scripted:
         self._thread = threading.Thread(target=self._serve, daemon=True)
         self._thread.start()
 
-    def answer(self, pieces: list[bytes] | bytes, close: bool = False) -> None:
+    def answer(self, pieces: list[bytes | float] | bytes, close: bool = False) -> None:
+        """Queue the answer to the next request: bytes to write, or seconds to wait first."""
         self.script.append(([pieces] if isinstance(pieces, bytes) else pieces, close))
 
     def _serve(self) -> None:
@@ -75,7 +78,10 @@ class Scripted:
         self.requests.append(head + b"\r\n\r\n" + body)
         pieces, close = self.script.pop(0)
         for piece in pieces:
-            conn.sendall(piece)
+            if isinstance(piece, float):
+                time.sleep(piece)
+            else:
+                conn.sendall(piece)
         return not close
 
     def close(self) -> None:
@@ -223,6 +229,45 @@ def test_no_answer_is_a_read_timeout_and_no_server_a_connect_error(
     server.path.unlink()  # nobody listens at the path any more
     [gone] = run_posts(kind, server, [PLAIN])
     assert isinstance(gone, httpx.ConnectError), gone
+
+
+class Interrupted(BaseException):
+    """What Ctrl-C is to a caller: not an Exception, raised in the middle of anything."""
+
+
+def test_an_interrupted_exchange_never_answers_the_next_request(server: Scripted) -> None:
+    """An answer still on its way when the caller was interrupted arrives on a connection the
+    poster has dropped: the next request gets its own answer, not that one."""
+    late = b"HTTP/1.1 200 OK\r\ncontent-length: 4\r\n\r\nlate"
+    server.answer([0.5, late])
+    server.answer(OK)
+    server.answer([0.5, late])
+    server.answer(OK)
+
+    def interrupt(signum: int, frame: object) -> None:
+        raise Interrupted
+
+    posts = UnixPoster(str(server.path), "keepset", {}, 5.0)
+    previous = signal.signal(signal.SIGALRM, interrupt)
+    try:
+        signal.setitimer(signal.ITIMER_REAL, 0.1)
+        with pytest.raises(Interrupted):
+            posts.post(*PLAIN)
+    finally:
+        signal.setitimer(signal.ITIMER_REAL, 0)
+        signal.signal(signal.SIGALRM, previous)
+    assert posts.post(*PLAIN) == ANSWERED
+    posts.close()
+
+    async def cancelled_then_next() -> Result:
+        posts = AsyncUnixPoster(str(server.path), "keepset", {}, 5.0)
+        with pytest.raises(TimeoutError):
+            await asyncio.wait_for(posts.post(*PLAIN), 0.1)
+        answered = await posts.post(*PLAIN)
+        await posts.aclose()
+        return answered
+
+    assert asyncio.run(cancelled_then_next()) == ANSWERED
 
 
 @pytest.mark.parametrize("poster", [UnixPoster, AsyncUnixPoster])

@@ -97,6 +97,10 @@ class _Kept:
     size: int
     mapping: mmap.mmap
 
+    def maps(self, info: os.stat_result) -> bool:
+        """True when ``info`` describes the file this mapping holds, at the size it mapped."""
+        return (info.st_dev, info.st_ino, info.st_size) == (self.device, self.inode, self.size)
+
 
 class SegmentMaps:
     """The mappings of the segments a worker read last, kept open between requests (at most
@@ -117,11 +121,7 @@ class SegmentMaps:
         """The open mapping of the whole file ``fd`` (just checked, named ``name``)."""
         with self._lock:
             kept = self._kept.get(name)
-            if kept is not None and (kept.device, kept.inode, kept.size) == (
-                info.st_dev,
-                info.st_ino,
-                info.st_size,
-            ):
+            if kept is not None and kept.maps(info):
                 self._kept.move_to_end(name)
                 return kept.mapping
             self._drop_gone()
@@ -147,8 +147,7 @@ class SegmentMaps:
                 info = os.lstat(path)
             except OSError:
                 return None
-            same = (info.st_dev, info.st_ino, info.st_size) == (kept.device, kept.inode, kept.size)
-            if not stat.S_ISREG(info.st_mode) or not same:
+            if not stat.S_ISREG(info.st_mode) or not kept.maps(info):
                 return None
             self._kept.move_to_end(name)
             return kept.mapping, kept.size

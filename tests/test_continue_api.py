@@ -172,6 +172,8 @@ def test_shadow_policy_sees_every_step(client: TestClient) -> None:
 
 def test_bad_requests(client: TestClient) -> None:
     assert_problem(go(client, {"prompt": "word " * 400}), 413, "context is 256 tokens")
+    streamed = {"prompt": "word " * 400, "stream": True}
+    assert_problem(go(client, streamed), 413, "context is 256 tokens")
     assert_problem(go(client, {"prompt": 3}), 400, "prompt")
     assert_problem(go(client, {"prompt": "x", "budget": 0}), 400, "budget")
     assert_problem(go(client, {"prompt": "x", "colour": "red"}), 400, "colour")

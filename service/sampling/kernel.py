@@ -321,7 +321,48 @@ def _largest(values: Any, m: int) -> Any:
     """Mask of the ``m`` largest of ``values`` (m < size), ties at the m-th value to the lower
     index: what a stable sort by decreasing value would put first, without sorting. One
     selection finds the m-th value; everything above it is in, then equal ones in index order."""
-    return _largest_from(values, m, np.partition(values, values.size - m)[values.size - m])
+    return _largest_from(values, m, _kth_largest(values, m))
+
+
+@njit(fastmath=_VECTOR_MATH, **_JIT)
+def _count_keys_at_least(keys: Any, floor: Any) -> int:
+    count = 0
+    for i in range(keys.size):
+        count += keys[i] >= floor
+    return count
+
+
+@njit(**_JIT)
+def _kth_largest(values: Any, m: int) -> Any:
+    """The m-th largest of ``values`` (1 <= m <= size; no NaN among them), by counting: the
+    values as unsigned integers in the same order (sign bit flipped for positives, every bit
+    for negatives), and the m-th largest key found bit by bit from the top, each bit one
+    vectorised count. For a few hundred candidates this takes a third of a selection's time
+    (whose every comparison is a branch the CPU cannot predict)."""
+    if values.itemsize == 4:
+        bits32 = np.ascontiguousarray(values).view(np.int32)
+        keys32 = np.empty(values.size, np.uint32)
+        for i in range(values.size):
+            v = bits32[i]
+            keys32[i] = np.uint32(v) | np.uint32(0x80000000) if v >= 0 else ~np.uint32(v)
+        found32 = np.uint32(0)
+        for b in range(31, -1, -1):
+            trial32 = found32 | np.uint32(1 << b)
+            if _count_keys_at_least(keys32, trial32) >= m:
+                found32 = trial32
+        return values[np.flatnonzero(keys32 == found32)[0]]
+    bits = np.ascontiguousarray(values).view(np.int64)
+    keys = np.empty(values.size, np.uint64)
+    top = np.uint64(1) << np.uint64(63)
+    for i in range(values.size):
+        v = bits[i]
+        keys[i] = np.uint64(v) | top if v >= 0 else ~np.uint64(v)
+    found = np.uint64(0)
+    for b in range(63, -1, -1):
+        trial = found | (np.uint64(1) << np.uint64(b))
+        if _count_keys_at_least(keys, trial) >= m:
+            found = trial
+    return values[np.flatnonzero(keys == found)[0]]
 
 
 @njit(**_JIT)

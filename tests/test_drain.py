@@ -15,10 +15,13 @@ from typing import Any
 import httpx
 import pytest
 from conftest import Server, assert_problem, auth, start_server, stop_server
-from test_continue_server import route_usher_desk_to_long_take, sse_events
+from test_continue_server import LONG_TAKE_BUDGET, route_usher_desk_to_long_take, sse_events
 
 DRAIN_SECONDS = 2.0
 SHUTDOWN_SECONDS = 20.0
+# The long stream is sized from the measured token rate to run about this long on its own, so it
+# outlasts the drain on a fast machine and still ends well within the shutdown time on a slow one.
+LONG_STREAM_SECONDS = 6.0
 
 
 @pytest.fixture
@@ -57,10 +60,20 @@ def _stream(base: str, budget: int, started: threading.Event, out: dict[str, Any
     started.set()
 
 
+def _tokens_per_second(base: str) -> float:
+    """The rate of one streamed continuation on this machine (model and policy of the test)."""
+    out: dict[str, Any] = {}
+    began = time.monotonic()
+    _stream(base, 400, threading.Event(), out)
+    assert out.get("steps") == 400, out
+    return 400 / (time.monotonic() - began)
+
+
 def test_sigterm_drains_then_exits(draining_server: Server) -> None:
     base = draining_server.base_url
     # Short streams end within the drain; the long one outlasts it and must still end whole.
-    budgets = [120, 120, 120, 2500]
+    long_budget = min(int(_tokens_per_second(base) * LONG_STREAM_SECONDS), LONG_TAKE_BUDGET)
+    budgets = [120, 120, 120, long_budget]
     results: list[dict[str, Any]] = [{} for _ in budgets]
     started = [threading.Event() for _ in budgets]
     threads = [

@@ -61,6 +61,12 @@ class Settings(BaseSettings):
     shutdown_seconds: float = Field(
         default=20.0, ge=0.0, description="after the drain: the most in-flight work may still take"
     )
+    stream_flush_ms: float = Field(
+        default=10.0,
+        ge=0.0,
+        le=1000.0,
+        description="streamed steps are sent at most this often (the first at once); 0: each step",
+    )
     log_level: str = "info"
     shm_dir: Path | None = Field(
         default=None, description="folder of shared-memory segments callers may name; off if unset"

@@ -4,6 +4,7 @@ streaming, metrics and every error class."""
 
 from __future__ import annotations
 
+import asyncio
 import dataclasses
 import json
 import time
@@ -19,10 +20,11 @@ from prometheus_client import REGISTRY
 from scipy.special import log_softmax, softmax
 from scipy.stats import entropy
 
+from service.app import _event_stream
 from service.model import BUNDLED, Model
-from service.prompting import StepRecord
+from service.prompting import PromptRun, StepRecord
 from service.registry import load_registry
-from service.sampling import final_distribution
+from service.sampling import final_distribution, parse_chain
 
 PROMPT = "KING. Good morrow, my lords. What news from the north, and"
 
@@ -142,6 +144,30 @@ def test_streaming_sends_one_step_event_per_token(client: TestClient) -> None:
     assert "".join(s["text"] for s in steps) == done["text"]
     plain = go(client, {"prompt": PROMPT, "seed": 5, "routing_key": "act-1"}).json()
     assert plain["tokens"] == done["tokens"] and plain["finish"] == done["finish"]
+
+
+def _stream_chunks(model: Model, flush_seconds: float) -> list[bytes]:
+    """The chunks of a 40-step stream as the app writes them (the end token banned)."""
+    chain = parse_chain([{"ban": [0]}, {"temperature": 1.0}])
+    run = PromptRun(model, chain, PROMPT, budget=40, seed=8)
+
+    async def collect() -> list[bytes]:
+        return [chunk async for chunk in _event_stream({"seed": 8}, run, flush_seconds)]
+
+    return asyncio.run(collect())
+
+
+def test_streamed_steps_go_out_at_most_once_per_flush_interval(model: Model) -> None:
+    # 40 steps take tens of milliseconds: with a one-second interval the first step goes out
+    # alone, at once, and the other 39 in one write when the run ends.
+    chunks = _stream_chunks(model, flush_seconds=1.0)
+    steps_per_chunk = [chunk.count(b"event: step\n") for chunk in chunks]
+    assert steps_per_chunk == [0, 1, 39, 0], steps_per_chunk
+    assert chunks[0].startswith(b"event: start\n") and chunks[-1].startswith(b"event: done\n")
+    # Interval 0: every step is handed over as made; the events are the same.
+    every = _stream_chunks(model, flush_seconds=0.0)
+    assert b"".join(every) == b"".join(chunks)
+    assert sum(chunk.count(b"event: step\n") for chunk in every) == 40
 
 
 def metric(name: str, **labels: str) -> float:

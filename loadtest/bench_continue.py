@@ -38,7 +38,7 @@ from bench_http import start_keepset
 from service.keys import load_keyring
 from service.model import BUNDLED, Model
 from service.prompting import PromptRun
-from service.sampling import parse_chain, pick
+from service.sampling import StepPicker, parse_chain
 
 ROOT = Path(__file__).resolve().parents[1]
 KEY = "demo-usher-desk-key"
@@ -56,13 +56,15 @@ CHAINS: dict[str, list[dict[str, Any]]] = {
 
 
 def bare_loop(model: Model, budget: int) -> float:
-    """Seconds for ``budget`` greedy tokens with onnxruntime and the cache, nothing else."""
+    """Seconds for ``budget`` greedy tokens with onnxruntime and the cache, nothing else: the
+    same ``budget`` model calls as a continuation (the prompt, then every token but the last)."""
     ids = model.text_ids(PROMPT)
     started = time.perf_counter()
     logits, past = model.forward(np.asarray([ids], np.int64), model.empty_cache())
-    for _ in range(budget):
-        token = int(np.argmax(logits[0, -1]))
+    token = int(np.argmax(logits[0, -1]))
+    for _ in range(budget - 1):
         logits, past = model.forward(np.asarray([[token]], np.int64), past)
+        token = int(np.argmax(logits[0, -1]))
     return time.perf_counter() - started
 
 
@@ -76,17 +78,20 @@ def in_process(model: Model, name: str, budget: int, seed: int) -> tuple[float, 
 
 
 def policy_alone(model: Model, name: str, budget: int, repeats: int) -> float:
-    """Median seconds per token of ``pick`` alone, on the rows a real continuation produced."""
+    """Median seconds per token of the policy alone (the ``StepPicker`` a continuation calls),
+    on the rows a real continuation produced, one after another (warm caches: inside a
+    continuation each pick follows a model call and takes longer)."""
     chain = parse_chain(CHAINS[name])
     run = PromptRun(model, chain, PROMPT, budget=budget, seed=3, keep_logits=True)
     for _ in run:
         pass
     assert run.logits is not None
+    picker = StepPicker(chain, model.info.vocab_size, 3)
     times = []
     for _ in range(repeats):
         started = time.perf_counter()
         for t, (row, history) in enumerate(zip(run.logits, run.histories, strict=True)):
-            pick(chain, row, 3, [history], first_stream=t)
+            picker(row, history, t)
         times.append((time.perf_counter() - started) / len(run.logits))
     return statistics.median(times)
 

@@ -66,7 +66,7 @@ _JIT: dict[str, Any] = {"nogil": True, "cache": True, "error_model": "numpy"}
 _VECTOR_MATH = {"contract", "reassoc", "nsz", "arcp"}
 
 
-# --- three LLVM operations numba does not expose in a form that vectorises ----------------------
+# --- four LLVM operations numba does not expose in a form that vectorises ----------------------
 
 
 @intrinsic
@@ -84,6 +84,18 @@ def _max_f32(typingctx: Any, a: Any, b: Any) -> Any:
     def codegen(context: Any, builder: Any, signature: Any, args: Any) -> Any:
         f = ir.FloatType()
         fn = builder.module.declare_intrinsic("llvm.maxnum", [f], ir.FunctionType(f, [f, f]))
+        return builder.call(fn, args)
+
+    return types.float32(types.float32, types.float32), codegen
+
+
+@intrinsic
+def _min_f32(typingctx: Any, a: Any, b: Any) -> Any:
+    """IEEE minNum: the smaller, and the other operand when one is NaN."""
+
+    def codegen(context: Any, builder: Any, signature: Any, args: Any) -> Any:
+        f = ir.FloatType()
+        fn = builder.module.declare_intrinsic("llvm.minnum", [f], ir.FunctionType(f, [f, f]))
         return builder.call(fn, args)
 
     return types.float32(types.float32, types.float32), codegen
@@ -279,13 +291,16 @@ def _count_floor(values: Any, top: Any, m: int) -> Any:
 
 @njit(fastmath=_VECTOR_MATH, **_JIT)
 def _finite_count_and_min(values: Any) -> tuple[int, float]:
-    """How many of ``values`` are finite (no NaN or +inf reaches here), and the least of those."""
+    """How many of ``values`` are finite (no NaN or +inf reaches here), and the least of those.
+    Two loops, because LLVM vectorises each alone but not the two fused (4 us against 0.5 us
+    for 4096 entries), and minNum, because Python's ``min`` does not vectorise either."""
     count = 0
+    for i in range(values.size):
+        count += values[i] > -np.inf
     lowest = np.float32(np.inf)
     for i in range(values.size):
-        finite = values[i] > -np.inf
-        count += finite
-        lowest = min(lowest, values[i] if finite else np.float32(np.inf))
+        v = values[i]
+        lowest = _min_f32(lowest, v if v > -np.inf else np.float32(np.inf))
     return count, float(lowest)
 
 

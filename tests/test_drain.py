@@ -72,8 +72,11 @@ def _tokens_per_second(base: str) -> float:
 def test_sigterm_drains_then_exits(draining_server: Server) -> None:
     base = draining_server.base_url
     # Short streams end within the drain; the long one outlasts it and must still end whole.
-    long_budget = min(int(_tokens_per_second(base) * LONG_STREAM_SECONDS), LONG_TAKE_BUDGET)
-    budgets = [120, 120, 120, long_budget]
+    rate = _tokens_per_second(base)
+    # Half a second of work each, alone: long enough that none ends before all four have started.
+    short_budget = max(120, int(rate * 0.5))
+    long_budget = min(int(rate * LONG_STREAM_SECONDS), LONG_TAKE_BUDGET)
+    budgets = [short_budget] * 3 + [long_budget]
     results: list[dict[str, Any]] = [{} for _ in budgets]
     started = [threading.Event() for _ in budgets]
     threads = [

@@ -77,28 +77,27 @@ def _bits_to_f32(typingctx: Any, v: Any) -> Any:
     return types.float32(types.int32), codegen
 
 
-@intrinsic
-def _max_f32(typingctx: Any, a: Any, b: Any) -> Any:
-    """IEEE maxNum: the larger, and the other operand when one is NaN (NaN never wins)."""
+def _f32_binary(llvm_name: str) -> Any:
+    """Code generation for a call of the float32 LLVM intrinsic ``llvm_name`` on two operands."""
 
     def codegen(context: Any, builder: Any, signature: Any, args: Any) -> Any:
         f = ir.FloatType()
-        fn = builder.module.declare_intrinsic("llvm.maxnum", [f], ir.FunctionType(f, [f, f]))
+        fn = builder.module.declare_intrinsic(llvm_name, [f], ir.FunctionType(f, [f, f]))
         return builder.call(fn, args)
 
-    return types.float32(types.float32, types.float32), codegen
+    return codegen
+
+
+@intrinsic
+def _max_f32(typingctx: Any, a: Any, b: Any) -> Any:
+    """IEEE maxNum: the larger, and the other operand when one is NaN (NaN never wins)."""
+    return types.float32(types.float32, types.float32), _f32_binary("llvm.maxnum")
 
 
 @intrinsic
 def _min_f32(typingctx: Any, a: Any, b: Any) -> Any:
     """IEEE minNum: the smaller, and the other operand when one is NaN."""
-
-    def codegen(context: Any, builder: Any, signature: Any, args: Any) -> Any:
-        f = ir.FloatType()
-        fn = builder.module.declare_intrinsic("llvm.minnum", [f], ir.FunctionType(f, [f, f]))
-        return builder.call(fn, args)
-
-    return types.float32(types.float32, types.float32), codegen
+    return types.float32(types.float32, types.float32), _f32_binary("llvm.minnum")
 
 
 @intrinsic

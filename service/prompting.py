@@ -90,17 +90,26 @@ class PromptRun:
         self._pick = StepPicker(chain, model.info.vocab_size, self.seed, kernel=kernel)
         # Raises PromptTooLong / PromptError before any model call.
         self._continuation: Continuation = model.generate(prompt, budget, self._step, stop=stop)
+        # The ids the penalties see, kept as the kernel reads them (the model's list converted
+        # on every step cost a prompt step more than the penalty itself): the prompt after its
+        # start marker, then every token picked.
+        seen = self._continuation.prompt_ids[self._skip :]
+        self._seen = np.empty(len(seen) + budget, np.int64)
+        self._seen[: len(seen)] = seen
+        self._filled = len(seen)
 
     def _step(self, row: npt.NDArray[np.float32], history: list[int]) -> int:
         if self.cancel is not None and self.cancel.is_set():
             raise Cancelled
-        step = len(self._picks)
-        history = history[self._skip :]
-        out = self._pick(row, history, step)
+        n = self._filled
+        assert len(history) - self._skip == n, "the model's history is the prompt and the picks"
+        out = self._pick(row, self._seen[:n], len(self._picks))
+        self._seen[n] = out.token
+        self._filled = n + 1
         self._picks.append(out)
         if self.logits is not None:
             self.logits.append(row)
-            self.histories.append(history)
+            self.histories.append(history[self._skip :])
         return out.token
 
     @property

@@ -148,58 +148,30 @@ def history_arrays(plan: Plan, histories: list[list[int]]) -> tuple[I64, I64]:
 _NO_HISTORY = (np.zeros((1, 0), np.int64), np.zeros(1, np.int64))
 
 
-@dataclass(slots=True)
-class Scratch:
-    """The arrays one row's pick reads and writes besides the row, kept from step to step of a
-    prompt (numpy allocations cost a prompt step more than a penalty's edits do)."""
-
-    out_ints: I64
-    out_floats: F64
-    seed_stream: NDArray[np.uint64]
-    history: I64  # [1, capacity]: the row's recent ids from the left
-    lengths: I64
+# A prompt step's numbers, as ``StepPick`` holds them: token, kept size, kept mass, entropy,
+# prob, logprob.
+StepNumbers = tuple[int, int, float, float, float, float]
 
 
-def scratch(seed: int) -> Scratch:
-    return Scratch(
-        np.empty((3, 1), np.int64),
-        np.empty((4, 1)),
-        np.array((seed, 0), np.uint64),
-        np.empty((1, 64), np.int64),
-        np.zeros(1, np.int64),
-    )
-
-
-def pick_one(plan: Plan, row: F32, history: list[int], stream: int, space: Scratch) -> bool:
-    """One float32 ``[V]`` row through the kernel, drawing with output ``stream`` of the seed's
-    SplitMix64; the result is left in ``space.out_ints``/``out_floats`` (as ``pick_rows``'s).
-    False when the kernel did not decide the row."""
+def pick_one(
+    plan: Plan, row: F32, history: I64 | list[int], stream: NDArray[np.uint64]
+) -> StepNumbers | None:
+    """One float32 ``[V]`` row through the kernel (``kernel.pick_row``), drawing with output
+    ``stream[1]`` of SplitMix64 seeded with ``stream[0]``; ``history`` is the row's ids, oldest
+    first (an int64 array is read in place). None when the kernel did not decide the row."""
     keep = plan.history_tail
-    past, lengths = _NO_HISTORY
-    if keep != 0:
-        recent = history if keep is None else history[-keep:]
-        n = len(recent)
-        if n > space.history.shape[1]:
-            space.history = np.empty((1, 2 * n), np.int64)
-        space.history[0, :n] = recent
-        space.lengths[0] = n
-        past, lengths = space.history, space.lengths
-    space.seed_stream[1] = stream
-    rows = row[None, :]
-    rows.flags.writeable = False  # a view: one compiled type for every row (see _read_only)
-    undecided = kernel.pick_rows(
-        rows,
-        0,
-        1,
-        plan.ints,
-        plan.floats,
-        past,
-        lengths,
-        space.seed_stream,
-        space.out_ints,
-        space.out_floats,
-    )
-    return bool(undecided == 0)
+    if keep == 0:
+        recent = _NO_IDS
+    else:
+        tail = history if keep is None else history[-keep:]
+        recent = tail if isinstance(tail, np.ndarray) else np.array(tail, np.int64)
+    view = row.view()
+    view.flags.writeable = False  # one compiled type for every row (see _read_only)
+    out = kernel.pick_row(view, plan.ints[0], plan.floats[0], recent, stream)
+    return out[1:] if out[0] == kernel.DECIDED else None
+
+
+_NO_IDS = np.zeros(0, np.int64)
 
 
 def decide(plan: Plan, raw: F32, history: list[int], u: float) -> Decided | None:
@@ -337,5 +309,6 @@ def warm_up() -> None:
         plan = plan_for(chain)
         assert plan is not None
         decide(plan, raw, [1, 2, 3], 0.5)
+        pick_one(plan, raw, np.array([1, 2], np.int64), np.array((7, 0), np.uint64))
         pick_rows(plan, raw[None, :], [[1]], 7, 0, lambda work, n: work(0, n))
         pick_rows(plan, np.stack([raw, raw]), [[1], [2, 2]], 7, 0, lambda work, n: work(0, n))

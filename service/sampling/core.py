@@ -164,24 +164,26 @@ class StepPicker:
     history and stream equals ``pick(chain, row, seed, [history], first_stream=stream)`` (the
     tests hold it so). Not for sharing between threads."""
 
-    __slots__ = ("_space", "chain", "kernel", "plan", "seed")
+    __slots__ = ("_stream", "chain", "kernel", "plan", "seed")
 
     def __init__(self, chain: Chain, vocab: int, seed: int, *, kernel: Kernel | None = None):
         _check_seed(seed)
         _check_token_ids(chain, vocab)
         self.chain, self.seed, self.kernel = chain, seed, kernel
         self.plan = _plan(chain, kernel)
-        self._space = None if compiled is None else compiled.scratch(seed)
+        self._stream = np.array((seed, 0), np.uint64)  # (seed, stream) as the kernel reads it
 
-    def __call__(self, row: F32, history: list[int], stream: int) -> StepPick:
+    def __call__(self, row: F32, history: list[int] | NDArray[np.int64], stream: int) -> StepPick:
         # Other rows (float16/64, strided) take pick's path, which converts them.
         if self.plan is not None and row.dtype == np.float32 and row.flags.c_contiguous:
-            assert compiled is not None and self._space is not None
-            if compiled.pick_one(self.plan, row, history, stream, self._space):
-                _, token, kept = self._space.out_ints[:, 0].tolist()
-                kept_mass, entropy, prob, logprob = self._space.out_floats[:, 0].tolist()
+            assert compiled is not None
+            self._stream[1] = stream
+            numbers = compiled.pick_one(self.plan, row, history, self._stream)
+            if numbers is not None:
+                token, kept, kept_mass, entropy, prob, logprob = numbers
                 return StepPick(token, kept, kept_mass, entropy, prob, logprob, None)
-        seen = [history] if self.chain.reads_history else None
+        ids = history if isinstance(history, list) else history.tolist()
+        seen = [ids] if self.chain.reads_history else None
         out = pick(self.chain, row, self.seed, seen, first_stream=stream, kernel=self.kernel)
         return StepPick(
             int(out.tokens[0]),

@@ -845,6 +845,25 @@ def uniform(seed: Any, stream: Any) -> float:
 
 
 @njit(**_JIT)
+def pick_row(row: Any, ints: Any, floats: Any, history: Any, seed_stream: Any) -> Any:
+    """One row (1-D, read-only) with one plan row and its history, drawing with output
+    ``seed_stream[1]`` of SplitMix64 seeded with ``seed_stream[0]``: (status, token, kept
+    size, kept mass, entropy, prob, logprob), the numbers ``pick_rows`` writes, as one tuple
+    (a prompt step then reads no output arrays)."""
+    u = uniform(seed_stream[0], seed_stream[1])
+    decided = decide_row(row, ints, floats, history, u)
+    return (
+        decided[0],
+        decided[3],
+        decided[1].size,
+        decided[5],
+        decided[6],
+        decided[4],
+        decided[7],
+    )
+
+
+@njit(**_JIT)
 def pick_rows(
     rows: Any,
     lo: int,

@@ -361,9 +361,10 @@ def _add_routes(app: FastAPI, live: Live) -> dict[tuple[str, str], Endpoint]:
             "text": run.text,
             "tokens": run.tokens,
             "finish": run.finish,
-            "steps": [r.as_dict() for r in records],
+            "steps": records,
         }
-        # orjson: the standard encoder took 0.4 ms for the 128 steps of a continuation.
+        # orjson (which writes a dataclass by its fields): the standard encoder took 0.4 ms for
+        # the 128 steps of a continuation.
         return Response(
             orjson.dumps(answer), media_type="application/json", background=afterwards(run)
         )
@@ -583,7 +584,7 @@ def _start_problem(exc: Exception) -> Problem:
     return Problem(422, "bad-prompt", str(exc))
 
 
-def _sse(event: str, data: dict[str, Any]) -> bytes:
+def _sse(event: str, data: dict[str, Any] | StepRecord) -> bytes:
     return b"event: " + event.encode() + b"\ndata: " + orjson.dumps(data) + b"\n\n"
 
 
@@ -640,7 +641,7 @@ async def _event_stream(
                 if item is None:
                     ended = True
                     break
-                events.extend(_sse("step", record.as_dict()) for record in item)
+                events.extend(_sse("step", record) for record in item)
             if events:
                 yield b"".join(events)
             if failure is not None:

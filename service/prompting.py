@@ -24,9 +24,12 @@ class Cancelled(Exception):
     """The caller asked the run to stop (its client went away); no further step is taken."""
 
 
-@dataclass(frozen=True)
+@dataclass(slots=True)
 class StepRecord:
-    """One generated token: its text piece and the per-step diagnostics of DESIGN.md §1."""
+    """One generated token: its text piece and the per-step diagnostics of DESIGN.md §1. Not
+    changed once made; not frozen, because a frozen dataclass takes three times as long to
+    make (1.2 µs against 0.4, on every step). The answers are its fields, as orjson writes a
+    dataclass."""
 
     token: int
     text: str
@@ -36,19 +39,6 @@ class StepRecord:
     kept: int
     kept_mass: float
     fallback: str | None
-
-    def as_dict(self) -> dict[str, object]:
-        # By hand: dataclasses.asdict copies recursively, 5 µs a step for these plain fields.
-        return {
-            "token": self.token,
-            "text": self.text,
-            "prob": self.prob,
-            "logprob": self.logprob,
-            "entropy": self.entropy,
-            "kept": self.kept,
-            "kept_mass": self.kept_mass,
-            "fallback": self.fallback,
-        }
 
 
 class PromptRun:

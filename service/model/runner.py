@@ -412,20 +412,26 @@ class Model:
                     logits, past = self.forward(last, past)
             row = np.array(logits[0, -1], dtype=np.float32, copy=True)
             token = step_fn(row, list(history))
-            if isinstance(token, bool) or not isinstance(token, int | np.integer):
-                raise TypeError(f"step_fn returned {token!r}, expected a token id")
-            token = int(token)
+            if type(token) is not int:  # one check for the usual plain int
+                if isinstance(token, bool) or not isinstance(token, int | np.integer):
+                    raise TypeError(f"step_fn returned {token!r}, expected a token id")
+                token = int(token)
             if not 0 <= token < row.shape[0]:
                 raise ValueError(f"step_fn returned id {token}, outside 0..{row.shape[0] - 1}")
             history.append(token)
             last_step = n == budget - 1
-            if end is not None and token == end:
+            if token == end:
                 cont.finish = "end"
                 yield Step(token, pending + detok.flush())
                 return
             pending += detok.push(token)
             if last_step:
                 pending += detok.flush()
+                cont.finish = "budget"
+            if not stops:
+                piece, pending = pending, ""
+                yield Step(token, piece)
+                continue
             hits = [i for i in (pending.find(s) for s in stops) if i >= 0]
             if hits:
                 cont.finish = "stop"
@@ -433,8 +439,6 @@ class Model:
                 return
             hold = 0 if last_step else _held_back(pending, stops)
             piece, pending = pending[: len(pending) - hold], pending[len(pending) - hold :]
-            if last_step:
-                cont.finish = "budget"
             yield Step(token, piece)
         cont.finish = "budget"
 

@@ -45,7 +45,7 @@ class PickBody(BaseModel):
     history: list[list[StrictInt]] | None = None
     seed: StrictInt | None = Field(default=None, ge=0, lt=2**64)
     routing_key: str | None = Field(default=None, max_length=512)
-    adjust: dict[str, float] = {}
+    adjust: dict[str, float] = Field(default_factory=dict)
 
 
 class ContinueBody(BaseModel):
@@ -59,7 +59,7 @@ class ContinueBody(BaseModel):
     )
     seed: StrictInt | None = Field(default=None, ge=0, lt=2**64)
     routing_key: str | None = Field(default=None, max_length=512)
-    adjust: dict[str, float] = {}
+    adjust: dict[str, float] = Field(default_factory=dict)
     stream: bool = False
 
 

@@ -223,9 +223,10 @@ def _admin(request: Request, live: Live) -> str:
 class _Lanes:
     """Hot paths (``POST /v1/pick`` and ``/v1/continue``) go straight to their endpoint, past
     the exception middleware, the router's matching and FastAPI's route wrapper: those layers
-    took about 0.2 ms of a shared-memory step, and of a continuation's start. A problem the endpoint raises is answered here as the
-    exception middleware would; anything else reaches the server-error handler as before.
-    The routes stay registered, for the OpenAPI document and for other methods."""
+    took about 0.2 ms of a shared-memory step, and of a continuation's start. A problem the
+    endpoint raises is answered here as the exception middleware would; anything else reaches
+    the server-error handler as before. The routes stay registered, for the OpenAPI document
+    and for other methods."""
 
     def __init__(self, app: Any, lanes: dict[tuple[str, str], Endpoint]):
         self.app = app

@@ -273,3 +273,23 @@ def test_edits_that_overlap_within_and_across_stages() -> None:
     long_history = [[int(t) for t in rng.integers(0, vocab, 600)] for _ in range(3)]
     x = (rng.standard_normal((3, vocab)) * 3).astype(np.float32)
     assert _compare(large, 2, x, long_history) == 3
+
+
+def test_largest_float64_values_as_a_stable_sort_ranks_them() -> None:
+    """The kernel's top-m mask of float64 working logits against a stable sort by decreasing
+    value (numpy's argsort, kind="stable"): values that round to the same float32 (the kernel
+    ranks float32 roundings first, then the values tied there), signed zeros and values that
+    round to zero, exact ties, infinities, and every m."""
+    kernel = compiled.kernel
+    rng = np.random.default_rng(41)
+    base = rng.standard_normal(60) * 4
+    # Neighbours within float32's rounding of one another, and repeats.
+    near = base[:10] * (1 + rng.integers(1, 50, 10) * 2.0**-52)
+    tiny = np.array([0.0, -0.0, 1e-50, -1e-50, 1e-300, 0.0])
+    wide = np.array([np.inf, -np.inf, 1e300, -1e300, 3.5, 3.5])
+    for values in (np.concatenate([base, near, base[:5], tiny, wide]), np.round(base * 2) / 2):
+        rng.shuffle(values)
+        order = np.argsort(-values, kind="stable")
+        for m in range(1, values.size):
+            mask = kernel._largest(values, m)
+            assert np.array_equal(np.flatnonzero(mask), np.sort(order[:m])), m

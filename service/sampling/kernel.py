@@ -66,7 +66,7 @@ _JIT: dict[str, Any] = {"nogil": True, "cache": True, "error_model": "numpy"}
 _VECTOR_MATH = {"contract", "reassoc", "nsz", "arcp"}
 
 
-# --- four LLVM operations numba does not expose in a form that vectorises ----------------------
+# --- LLVM operations numba does not expose in a form that vectorises ---------------------------
 
 
 @intrinsic
@@ -109,6 +109,56 @@ def _floor_at(typingctx: Any, v: Any, low: Any) -> Any:
         return builder.select(below, args[1], args[0])
 
     return types.float32(types.float32, types.float32), codegen
+
+
+# Entries one vector compare covers: a 512-bit vector (LLVM splits it on narrower CPUs).
+LANES = 16
+
+
+@intrinsic
+def _at_least_mask(typingctx: Any, values: Any, start: Any, floor: Any) -> Any:
+    """Bit i set when ``values[start + i] >= floor``, for i < LANES: one vector load, compare
+    and mask move (a NaN compares false). ``values`` is contiguous float32 and holds the LANES
+    entries; the caller checks the bounds."""
+    if not (
+        isinstance(values, types.Array)
+        and values.dtype == types.float32
+        and values.ndim == 1
+        and values.layout == "C"
+    ):
+        return None
+
+    def codegen(context: Any, builder: Any, signature: Any, args: Any) -> Any:
+        array = context.make_array(signature.args[0])(context, builder, args[0])
+        vector = ir.VectorType(ir.FloatType(), LANES)
+        at = builder.bitcast(builder.gep(array.data, [args[1]]), vector.as_pointer())
+        loaded = builder.load(at, align=4)
+        first = builder.insert_element(
+            ir.Constant(vector, ir.Undefined), args[2], ir.Constant(ir.IntType(32), 0)
+        )
+        spread = builder.shuffle_vector(
+            first,
+            ir.Constant(vector, ir.Undefined),
+            ir.Constant(ir.VectorType(ir.IntType(32), LANES), [0] * LANES),
+        )
+        hits = builder.fcmp_ordered(">=", loaded, spread)
+        return builder.zext(builder.bitcast(hits, ir.IntType(LANES)), ir.IntType(64))
+
+    return types.uint64(values, types.intp, types.float32), codegen
+
+
+@intrinsic
+def _lowest_bit(typingctx: Any, x: Any) -> Any:
+    """The position of the lowest set bit of a non-zero uint64 (one tzcnt)."""
+
+    def codegen(context: Any, builder: Any, signature: Any, args: Any) -> Any:
+        i64 = ir.IntType(64)
+        fn = builder.module.declare_intrinsic(
+            "llvm.cttz", [i64], ir.FunctionType(i64, [i64, ir.IntType(1)])
+        )
+        return builder.call(fn, [args[0], ir.Constant(ir.IntType(1), 1)])
+
+    return types.uint64(types.uint64), codegen
 
 
 # --- the fused pass -----------------------------------------------------------------------------
@@ -352,28 +402,46 @@ def _kth_largest(values: Any, m: int) -> Any:
     values as unsigned integers in the same order (sign bit flipped for positives, every bit
     for negatives), and the m-th largest key found bit by bit from the top, each bit one
     vectorised count. For a few hundred candidates this takes a third of a selection's time
-    (whose every comparison is a branch the CPU cannot predict)."""
+    (whose every comparison is a branch the CPU cannot predict).
+
+    float64 values are first rounded to float32, which keeps their order (rounding is
+    monotone): the m-th largest rounded value takes half the bits at twice the lanes, and
+    the answer is among the few values that round to it."""
     if values.itemsize == 4:
-        bits32 = np.ascontiguousarray(values).view(np.int32)
-        keys32 = np.empty(values.size, np.uint32)
-        for i in range(values.size):
-            v = bits32[i]
-            keys32[i] = np.uint32(v) | np.uint32(0x80000000) if v >= 0 else ~np.uint32(v)
-        found32 = np.uint32(0)
-        for b in range(31, -1, -1):
-            trial32 = found32 | np.uint32(1 << b)
-            if _count_keys_at_least(keys32, trial32) >= m:
-                found32 = trial32
-        return values[np.flatnonzero(keys32 == found32)[0]]
-    bits = np.ascontiguousarray(values).view(np.int64)
-    keys = np.empty(values.size, np.uint64)
+        return _kth_largest_f32(values, m)
+    narrow = values.astype(np.float32)
+    rounded = _kth_largest_f32(narrow, m)
+    above = 0
+    for i in range(narrow.size):
+        above += narrow[i] > rounded
+    tied = values[narrow == rounded]
+    if tied.size == 1:
+        return tied[0]
+    bits = tied.view(np.int64)
+    keys = np.empty(tied.size, np.uint64)
     top = np.uint64(1) << np.uint64(63)
-    for i in range(values.size):
+    for i in range(tied.size):
         v = bits[i]
         keys[i] = np.uint64(v) | top if v >= 0 else ~np.uint64(v)
     found = np.uint64(0)
     for b in range(63, -1, -1):
         trial = found | (np.uint64(1) << np.uint64(b))
+        if _count_keys_at_least(keys, trial) >= m - above:
+            found = trial
+    return tied[np.flatnonzero(keys == found)[0]]
+
+
+@njit(**_JIT)
+def _kth_largest_f32(values: Any, m: int) -> Any:
+    """``_kth_largest`` of float32 values."""
+    bits = np.ascontiguousarray(values).view(np.int32)
+    keys = np.empty(values.size, np.uint32)
+    for i in range(values.size):
+        v = bits[i]
+        keys[i] = np.uint32(v) | np.uint32(0x80000000) if v >= 0 else ~np.uint32(v)
+    found = np.uint32(0)
+    for b in range(31, -1, -1):
+        trial = found | np.uint32(1 << b)
         if _count_keys_at_least(keys, trial) >= m:
             found = trial
     return values[np.flatnonzero(keys == found)[0]]
@@ -393,31 +461,29 @@ def _largest_from(values: Any, m: int, kth: Any) -> Any:
     return keep
 
 
-# Sub-block length inside a visited block: the compare over one is vectorised, and only the few
-# sub-blocks with a hit are read entry by entry.
-_SUB = 32
-
-
-@njit(fastmath=_VECTOR_MATH, **_JIT)
+@njit(**_JIT)
 def positions_at_least(row: Any, block_max: Any, floor: Any) -> Any:
     """Positions (ascending) of the finite entries >= ``floor``, visiting only the blocks whose
-    maximum reaches it. (Loops over a block's slice: indexing the whole row by a computed
-    position costs numba a wrap-around check that keeps LLVM from optimising the loop.)"""
+    maximum reaches it: LANES entries at a time, one vector compare giving a bit mask whose set
+    bits are read off lowest first (a quarter of the time of a compare and a store per entry).
+    """
     floor = max(floor, _LOWEST)  # -inf entries are never kept
     blocks = np.flatnonzero(block_max >= floor)
     found = np.empty(blocks.size * BLOCK, np.int64)
     count = 0
     for b in blocks:
-        for lo in range(b * BLOCK, min(b * BLOCK + BLOCK, row.size), _SUB):
-            sub = row[lo : min(lo + _SUB, row.size)]
-            hits = 0
-            for i in range(sub.size):
-                hits += sub[i] >= floor
-            if hits == 0:
-                continue
-            for i in range(sub.size):  # written always, kept by the count: no branch to miss
-                found[count] = lo + i
-                count += sub[i] >= floor
+        lo = b * BLOCK
+        hi = min(lo + BLOCK, row.size)
+        while lo + LANES <= hi:
+            mask = _at_least_mask(row, lo, floor)
+            while mask:
+                found[count] = lo + np.int64(_lowest_bit(mask))
+                count += 1
+                mask &= mask - np.uint64(1)
+            lo += LANES
+        for i in range(lo, hi):  # the row's last few entries
+            found[count] = i
+            count += row[i] >= floor
     return found[:count]
 
 
@@ -473,6 +539,32 @@ def _prefix(key: Any, mass: Any, target: float) -> Any:
 
 
 @njit(**_JIT)
+def _typical_set(w: Any, target: float) -> Any:
+    """Mask of the typical set (Meister et al. 2023) of working logits ``w``: the shortest
+    prefix, by distance of -log p from the entropy, with mass >= target. The operations of
+    ``_log_softmax``, ``np.exp`` and the entropy's sum in their order, in three loops: every
+    array expression was a loop and a temporary of its own, and a prompt step meets them all
+    with cold caches."""
+    n = w.size
+    top = w.max()
+    z = 0.0
+    for i in range(n):
+        z += math.exp(w[i] - top)
+    log_z = math.log(z)
+    logp = np.empty(n)
+    p = np.empty(n)
+    plogp = 0.0
+    for i in range(n):
+        logp[i] = (w[i] - top) - log_z
+        p[i] = math.exp(logp[i])
+        plogp += p[i] * logp[i]
+    entropy = -plogp
+    for i in range(n):
+        logp[i] = abs(logp[i] + entropy)  # now the distance from the entropy
+    return _prefix(logp, p, target)
+
+
+@njit(**_JIT)
 def _log_softmax(w: Any) -> Any:
     shifted = w - w.max()
     return shifted - math.log(np.exp(shifted).sum())
@@ -521,10 +613,7 @@ def apply_stages(ids: Any, w: Any, stages: Any, history: Any, min_keep: int) -> 
                 ids, w = _keep(ids, w, _prefix(-p, p, x), min_keep)
         elif code == TYPICAL:
             if x < 1.0:
-                logp = _log_softmax(w)
-                p = np.exp(logp)
-                entropy = -(p * logp).sum()
-                ids, w = _keep(ids, w, _prefix(np.abs(logp + entropy), p, x), min_keep)
+                ids, w = _keep(ids, w, _typical_set(w, x), min_keep)
         elif code == MIN_P:
             # p_i >= m * p_max  <=>  exp(w_i - w_max) >= m: the normaliser cancels.
             ids, w = _keep(ids, w, np.exp(w - w.max()) >= x, min_keep)

@@ -39,9 +39,9 @@ OUTPUTS = {"logits": ("tensor(float)", 3), "present_kv": ("tensor(float)", 6)}
 
 FloatArray = npt.NDArray[np.float32]
 StepFn = Callable[[FloatArray, list[int]], int]
-"""``step_fn(logits_row, history_ids) -> token_id``: ``logits_row`` is a fresh float32 ``[V]``
-copy of the next-token logits; ``history_ids`` the prompt ids (with the start id, if any) followed
-by the ids generated so far."""
+"""``step_fn(logits_row, history_ids) -> token_id``: ``logits_row`` is the next-token logits, a
+float32 ``[V]`` array of the step's own that nothing else refers to (it may be kept or changed);
+``history_ids`` the prompt ids (with the start id, if any) followed by the ids generated so far."""
 
 
 class ModelError(Exception):
@@ -410,7 +410,9 @@ class Model:
                 else:
                     last = np.asarray([[history[-1]]], np.int64)
                     logits, past = self.forward(last, past)
-            row = np.array(logits[0, -1], dtype=np.float32, copy=True)
+            # onnxruntime makes new output arrays on every call, so a one-token step's row is
+            # already the caller's own; a prompt's last row is copied out of its [T, V] block.
+            row = logits[0, -1] if logits.shape[1] == 1 else logits[0, -1].copy()
             token = step_fn(row, list(history))
             if type(token) is not int:  # one check for the usual plain int
                 if isinstance(token, bool) or not isinstance(token, int | np.integer):

@@ -492,8 +492,17 @@ def positions_at_least(row: Any, block_max: Any, floor: Any) -> Any:
 
 @njit(**_JIT)
 def softmax(w: Any) -> Any:
-    e = np.exp(w - w.max())
-    return e / e.sum()
+    """exp(w - max) / their sum, as ``np.exp(w - w.max())`` and its ``/ e.sum()`` compute it,
+    in loops that make one array instead of three."""
+    top = w.max()
+    e = np.empty(w.size)
+    total = 0.0
+    for i in range(w.size):
+        e[i] = math.exp(w[i] - top)
+        total += e[i]
+    for i in range(w.size):
+        e[i] /= total
+    return e
 
 
 @njit(**_JIT)
@@ -677,14 +686,18 @@ def _edited(v: float, kind: int, value: float) -> float:
 
 @njit(**_JIT)
 def _working(raw: Any, ids: Any, temp: float, edited: Any, values: Any) -> Any:
-    """Working logits of ``ids`` (ascending): raw / temperature, edited ids overwritten."""
-    w = raw[ids].astype(np.float64)
-    if temp != 1.0:
-        w /= temp
-    for k in range(edited.size):
-        pos = np.searchsorted(ids, edited[k])
-        if pos < ids.size and ids[pos] == edited[k]:
-            w[pos] = values[k]
+    """Working logits of ``ids`` (ascending): raw / temperature, edited ids (ascending) the
+    values they were edited to; one pass, both walked together."""
+    w = np.empty(ids.size)
+    k = 0
+    for i in range(ids.size):
+        token = ids[i]
+        while k < edited.size and edited[k] < token:
+            k += 1
+        if k < edited.size and edited[k] == token:
+            w[i] = values[k]
+        else:
+            w[i] = float(raw[token]) / temp
     return w
 
 

@@ -72,7 +72,7 @@ class PromptRun:
         self.records: list[StepRecord] = []
         self.histories: list[list[int]] = []
         self.logits: list[npt.NDArray[np.float32]] | None = [] if keep_logits else None
-        self._picks: list[StepPick] = []
+        self._last: StepPick | None = None  # the pick of the step the model is taking
         # The start marker put before text prompts is not something the penalties should see.
         self._skip = 0 if model.info.start_id is None else 1
         # The chain and seed are checked once here; every step's row and history come from
@@ -86,17 +86,17 @@ class PromptRun:
         seen = self._continuation.prompt_ids[self._skip :]
         self._seen = np.empty(len(seen) + budget, np.int64)
         self._seen[: len(seen)] = seen
-        self._filled = len(seen)
+        self._filled = self._prompt_seen = len(seen)
 
     def _step(self, row: npt.NDArray[np.float32], history: list[int]) -> int:
         if self.cancel is not None and self.cancel.is_set():
             raise Cancelled
         n = self._filled
         assert len(history) - self._skip == n, "the model's history is the prompt and the picks"
-        out = self._pick(row, self._seen[:n], len(self._picks))
+        out = self._pick(row, self._seen[:n], n - self._prompt_seen)
         self._seen[n] = out.token
         self._filled = n + 1
-        self._picks.append(out)
+        self._last = out
         if self.logits is not None:
             self.logits.append(row)
             self.histories.append(history[self._skip :])
@@ -122,17 +122,11 @@ class PromptRun:
         return self
 
     def __next__(self) -> StepRecord:
-        step = next(self._continuation)
-        out = self._picks[len(self.records)]
+        token, text = next(self._continuation)  # each step follows one _step call
+        out = self._last
+        assert out is not None and out.token == token
         record = StepRecord(
-            token=step.token_id,
-            text=step.text,
-            prob=out.prob,
-            logprob=out.logprob,
-            entropy=out.entropy,
-            kept=out.kept,
-            kept_mass=out.kept_mass,
-            fallback=out.fallback,
+            token, text, out.prob, out.logprob, out.entropy, out.kept, out.kept_mass, out.fallback
         )
         self.records.append(record)
         return record

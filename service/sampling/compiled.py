@@ -67,6 +67,9 @@ class Plan:
     # How much of a history the penalties read: 0 (none read it), the largest window, or
     # None (one reads the whole history).
     history_tail: int | None
+    # The same arrays' one row (the form pick_row reads), made once rather than every step.
+    row_ints: I64
+    row_floats: F64
 
 
 @dataclass(frozen=True)
@@ -120,7 +123,7 @@ def _plan(chain: Chain) -> Plan | None:
     ints, floats = _pack(chain.min_keep, chain.stages[:start], chain.stages[start:])
     windows = [_window(s) for s in chain.stages if s.method in HISTORY_METHODS]
     tail = 0 if not windows else None if None in windows else max(w for w in windows if w)
-    return Plan(ints[None, :], floats[None, :], tail)
+    return Plan(ints[None, :], floats[None, :], tail, ints, floats)
 
 
 def _window(stage: Stage) -> int | None:
@@ -165,9 +168,10 @@ def pick_one(
     else:
         tail = history if keep is None else history[-keep:]
         recent = tail if isinstance(tail, np.ndarray) else np.array(tail, np.int64)
-    view = row.view()
-    view.flags.writeable = False  # one compiled type for every row (see _read_only)
-    out = kernel.pick_row(view, plan.ints[0], plan.floats[0], recent, stream)
+    if row.flags.writeable:  # one compiled type for every row (see _read_only)
+        row = row.view()
+        row.flags.writeable = False
+    out = kernel.pick_row(row, plan.row_ints, plan.row_floats, recent, stream)
     return out[1:] if out[0] == kernel.DECIDED else None
 
 

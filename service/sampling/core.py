@@ -156,6 +156,9 @@ class StepPick(NamedTuple):
     fallback: str | None
 
 
+_FLOAT32 = np.dtype(np.float32)  # numpy's one float32 dtype: compared by identity per step
+
+
 class StepPicker:
     """``pick`` prepared for a stream of single rows from a trusted source (the model runner:
     float32 rows of one vocabulary, histories of ids it made itself). The chain is checked
@@ -175,7 +178,7 @@ class StepPicker:
 
     def __call__(self, row: F32, history: list[int] | NDArray[np.int64], stream: int) -> StepPick:
         # Other rows (float16/64, strided) take pick's path, which converts them.
-        if self.plan is not None and row.dtype == np.float32 and row.flags.c_contiguous:
+        if self.plan is not None and row.dtype is _FLOAT32 and row.flags.c_contiguous:
             assert compiled is not None
             self._stream[1] = stream
             numbers = compiled.pick_one(self.plan, row, history, self._stream)

@@ -64,7 +64,9 @@ from service.request_ids import RequestIds, new_secret
 from service.routing import Route
 from service.sampling import InputError, pick
 from service.serving import (
-    after_continuation,
+    account_continuation,
+    continuation_aside,
+    evaluates_aside,
     record_served,
     route_of,
     routes_with_ratio,
@@ -320,9 +322,16 @@ def _add_routes(app: FastAPI, live: Live) -> dict[tuple[str, str], Endpoint]:
 
         def afterwards(run: PromptRun) -> BackgroundTask:
             captured = request_id if capturing else None
-            after = BackgroundTask(
-                after_continuation, live, snapshot, route, client, served, run, captured
-            )
+
+            async def account() -> None:
+                # The metrics on the event loop (a thread hand-off would cost more than they
+                # do); a capture and the shadows, which pick again, in a worker thread.
+                steps = account_continuation(live, client, served, run)
+                if steps and evaluates_aside(live, route, run, captured):
+                    aside = (live, snapshot, route, client, served, run, steps, captured)
+                    await run_in_threadpool(continuation_aside, *aside)
+
+            after = BackgroundTask(account)
             if route.guard is not None:
                 after = after_run(after, live, client, route, guarding, run)
             return after

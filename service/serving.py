@@ -115,31 +115,48 @@ def watch_kept(live: Live, policy: Policy, kept: list[int]) -> None:
         log.info("collapse watch: kept set recovered %s", fields)
 
 
-def after_continuation(
+def account_continuation(live: Live, client: str, served: Served, run: PromptRun) -> int:
+    """Metrics and the collapse watch for every generated step (as for /v1/pick rows): a few
+    tenths of a millisecond for a long continuation, cheap enough for the event loop. Returns
+    how many steps were accounted."""
+    records = list(run.records)  # a cancelled stream's last step may still be landing
+    if records:
+        kept = [r.kept for r in records]
+        entropy = [r.entropy for r in records]
+        record_served(live, client, served, kept, entropy, [r.fallback for r in records])
+    return len(records)
+
+
+def evaluates_aside(live: Live, route: Route, run: PromptRun, captured: str | None) -> bool:
+    """Whether a continuation has work for :func:`continuation_aside`: a capture or shadows."""
+    if run.logits is None:
+        return False
+    return bool(route.shadow) or bool(captured and live.capture and route.capture)
+
+
+def continuation_aside(
     live: Live,
     snapshot: RegistrySnapshot,
     route: Route,
     client: str,
     served: Served,
     run: PromptRun,
+    steps: int,
     captured: str | None = None,
 ) -> None:
-    """Metrics for every generated step (as for /v1/pick rows), then the shadow policies on the
-    same logits, after the answer has gone out; ``captured`` is the answer's request_id when
-    this continuation was sampled for capture."""
-    records = list(run.records)  # a cancelled stream's last step may still be landing
-    if not records:
+    """After the answer has gone out (in a worker thread): the capture of the first ``steps``
+    steps when this continuation was sampled for it (``captured`` is the answer's
+    request_id), then the shadow policies on the same logits."""
+    if run.logits is None or not steps:
         return
-    kept = [r.kept for r in records]
-    fallback = [r.fallback for r in records]
-    record_served(live, client, served, kept, [r.entropy for r in records], fallback)
-    if captured and live.capture and route.capture and run.logits is not None:
+    records = run.records[:steps]
+    if captured and live.capture and route.capture:
         p = served.policy
         origin = Origin(client, captured, p.name, p.version, served.label, run.seed)
         live.capture.offer_steps(route.capture, origin, run.logits, run.histories, records)
-    if route.shadow and run.logits:
-        rows = np.stack(run.logits[: len(records)])
-        histories = run.histories[: len(records)]
+    if route.shadow:
+        rows = np.stack(run.logits[:steps])
+        histories = run.histories[:steps]
         run_shadows(snapshot, route.shadow, rows, histories, run.seed, live.kernel)
 
 

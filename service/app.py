@@ -17,6 +17,7 @@ import sqlite3
 import threading
 import time
 from collections.abc import AsyncIterator, Awaitable, Callable
+from concurrent.futures import ThreadPoolExecutor
 from functools import partial
 from typing import Any
 
@@ -111,6 +112,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         request_ids=RequestIds(new_secret() if secret is None else secret.get_secret_value()),
         outcomes=_outcome_store(settings),
         segment_maps=None if settings.shm_dir is None else SegmentMaps(settings.shm_dir),
+        continuations=ThreadPoolExecutor(settings.max_in_flight, "keepset-continue"),
     )
     warn_if_off(snapshot.routes, settings.capture_dir)
     if not snapshot.valid:
@@ -145,6 +147,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
             live.outcomes.close()
         if live.segment_maps is not None:
             live.segment_maps.close()
+        live.continuations.shutdown(wait=False)
 
     app = FastAPI(
         title="keepset",
@@ -354,7 +357,9 @@ def _add_routes(app: FastAPI, live: Live) -> dict[tuple[str, str], Endpoint]:
         made: list[PromptRun] = []
         watcher = asyncio.create_task(_cancel_on_disconnect(request, cancel))
         try:
-            records = await run_in_threadpool(_run_to_end, start, made)
+            records = await asyncio.get_running_loop().run_in_executor(
+                live.continuations, _run_to_end, start, made
+            )
         except Cancelled:
             # Nobody is listening; the status is for the request metrics and the access log.
             return Response(status_code=CLIENT_GONE, background=afterwards(made[0]))

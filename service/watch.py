@@ -37,8 +37,8 @@ class CollapseWatch:
     min_steps: int = 50
     _recent: dict[Key, deque[int]] = field(default_factory=dict)
     _active: set[Key] = field(default_factory=set)
-    # Picks feed the watch from the event loop, continuations from a worker thread after their
-    # answer: one lock, so a transition is reported once and a window is never read mid-change.
+    # Picks and continuations feed the watch from the event loop; the lock keeps it whole for a
+    # caller in another thread: a transition is reported once, a window never read mid-change.
     _lock: threading.Lock = field(default_factory=threading.Lock)
 
     def __post_init__(self) -> None:

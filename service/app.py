@@ -342,11 +342,12 @@ def _add_routes(app: FastAPI, live: Live) -> dict[tuple[str, str], Endpoint]:
         if body.stream:
             # Tokenizing a long prompt takes a while: off the event loop.
             try:
-                run = await run_in_threadpool(start)
+                run = await asyncio.get_running_loop().run_in_executor(live.continuations, start)
             except (PromptError, InputError) as exc:
                 raise _start_problem(exc) from None
+            flush_seconds = live.settings.stream_flush_ms / 1e3
             return StreamingResponse(
-                _event_stream(answer_head(run), run, live.settings.stream_flush_ms / 1e3),
+                _event_stream(answer_head(run), run, flush_seconds, live.continuations),
                 media_type="text/event-stream",
                 headers={"Cache-Control": "no-store", "X-Accel-Buffering": "no"},
                 background=afterwards(run),
@@ -604,15 +605,18 @@ def _sse(event: str, data: dict[str, Any] | StepRecord) -> bytes:
 
 
 async def _event_stream(
-    head: dict[str, Any], run: PromptRun, flush_seconds: float
+    head: dict[str, Any],
+    run: PromptRun,
+    flush_seconds: float,
+    executor: ThreadPoolExecutor | None = None,
 ) -> AsyncIterator[bytes]:
-    """One ``step`` event per token, then ``done``. The steps are made in one worker thread
-    and handed to the event loop in batches: the first at once, then whatever was made once
-    ``flush_seconds`` have passed since the last hand-over (each hand-over wakes the event
-    loop and the client, which cost the bundled model a tenth of its speed when done per
-    step). A step waits at most the interval plus one step. A client that disconnects
-    (Starlette then cancels this generator) sets the run's ``cancel``, which stops the model
-    at its next step."""
+    """One ``step`` event per token, then ``done``. The steps are made in one thread of
+    ``executor`` (None: the loop's default) and handed to the event loop in batches: the
+    first at once, then whatever was made once ``flush_seconds`` have passed since the last
+    hand-over (each hand-over wakes the event loop and the client, which cost the bundled
+    model a tenth of its speed when done per step). A step waits at most the interval plus
+    one step. A client that disconnects (Starlette then cancels this generator) sets the
+    run's ``cancel``, which stops the model at its next step."""
     yield _sse("start", head)
     loop = asyncio.get_running_loop()
     made: asyncio.Queue[list[StepRecord] | Exception | None] = asyncio.Queue()
@@ -638,7 +642,7 @@ async def _event_stream(
             hand_over(batch)
         hand_over(outcome)
 
-    producer = asyncio.ensure_future(run_in_threadpool(produce))
+    producer = asyncio.ensure_future(loop.run_in_executor(executor, produce))
     done: dict[str, Any]
     try:
         ended = False

@@ -183,7 +183,7 @@ def test_budget_and_sliding_past_the_context(model: Model, heldout: str) -> None
     seen: list[tuple[npt.NDArray[np.float32], list[int]]] = []
 
     def record(row: npt.NDArray[np.float32], history: list[int]) -> int:
-        seen.append((row.copy(), history))
+        seen.append((row.copy(), list(history)))  # the runner's list: copied to keep
         return int(np.argmax(row))
 
     cont = model.generate(prompt, 12, record, end_id=None)

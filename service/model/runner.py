@@ -41,7 +41,9 @@ FloatArray = npt.NDArray[np.float32]
 StepFn = Callable[[FloatArray, list[int]], int]
 """``step_fn(logits_row, history_ids) -> token_id``: ``logits_row`` is the next-token logits, a
 float32 ``[V]`` array of the step's own that nothing else refers to (it may be kept or changed);
-``history_ids`` the prompt ids (with the start id, if any) followed by the ids generated so far."""
+``history_ids`` the prompt ids (with the start id, if any) followed by the ids generated so far:
+the runner's own list, to be read during the call, not changed (copy it to keep it; a copy on
+every step touched every id's object, with the caches cold after the model's call)."""
 
 
 class ModelError(Exception):
@@ -413,7 +415,7 @@ class Model:
             # onnxruntime makes new output arrays on every call, so a one-token step's row is
             # already the caller's own; a prompt's last row is copied out of its [T, V] block.
             row = logits[0, -1] if logits.shape[1] == 1 else logits[0, -1].copy()
-            token = step_fn(row, list(history))
+            token = step_fn(row, history)
             if type(token) is not int:  # one check for the usual plain int
                 if isinstance(token, bool) or not isinstance(token, int | np.integer):
                     raise TypeError(f"step_fn returned {token!r}, expected a token id")

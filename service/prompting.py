@@ -93,6 +93,7 @@ class PromptRun:
             raise Cancelled
         n = self._filled
         assert len(history) - self._skip == n, "the model's history is the prompt and the picks"
+        row.flags.writeable = False  # the run's own row (see StepFn), read-only from here on
         out = self._pick(row, self._seen[:n], n - self._prompt_seen)
         self._seen[n] = out.token
         self._filled = n + 1

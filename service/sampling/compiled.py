@@ -17,6 +17,7 @@ from __future__ import annotations
 import weakref
 from collections.abc import Callable
 from dataclasses import dataclass
+from functools import partial
 from typing import Any
 
 import numpy as np
@@ -151,28 +152,25 @@ def history_arrays(plan: Plan, histories: list[list[int]]) -> tuple[I64, I64]:
 _NO_HISTORY = (np.zeros((1, 0), np.int64), np.zeros(1, np.int64))
 
 
-# A prompt step's numbers, as ``StepPick`` holds them: token, kept size, kept mass, entropy,
+DECIDED = kernel.DECIDED
+
+# ``(row, ids, stream)`` -> the kernel's tuple: status, token, kept size, kept mass, entropy,
 # prob, logprob.
-StepNumbers = tuple[int, int, float, float, float, float]
+OneRow = Callable[[F32, I64, int], tuple[Any, ...]]
 
 
-def pick_one(
-    plan: Plan, row: F32, history: I64 | list[int], stream: NDArray[np.uint64]
-) -> StepNumbers | None:
-    """One float32 ``[V]`` row through the kernel (``kernel.pick_row``), drawing with output
-    ``stream[1]`` of SplitMix64 seeded with ``stream[0]``; ``history`` is the row's ids, oldest
-    first (an int64 array is read in place). None when the kernel did not decide the row."""
+def one_row(plan: Plan, seed: int) -> OneRow:
+    """``kernel.pick_row`` with the plan's arrays and the seed bound, for a run of single rows:
+    called with a read-only float32 ``[V]`` row, the row's ids as int64 (all of its history:
+    the penalties take their windows) and its stream. A ``functools.partial``: no Python frame
+    between the caller and the kernel, which a prompt step meets with cold caches."""
+    return partial(kernel.pick_row, plan.row_ints, plan.row_floats, np.array([seed], np.uint64))
+
+
+def history_ids(plan: Plan, history: list[int]) -> I64:
+    """A history list as ``one_row`` reads it: the part the penalties read, as int64."""
     keep = plan.history_tail
-    if keep == 0:
-        recent = _NO_IDS
-    else:
-        tail = history if keep is None else history[-keep:]
-        recent = tail if isinstance(tail, np.ndarray) else np.array(tail, np.int64)
-    if row.flags.writeable:  # one compiled type for every row (see _read_only)
-        row = row.view()
-        row.flags.writeable = False
-    out = kernel.pick_row(row, plan.row_ints, plan.row_floats, recent, stream)
-    return out[1:] if out[0] == kernel.DECIDED else None
+    return _NO_IDS if keep == 0 else np.array(history[-keep:] if keep else history, np.int64)
 
 
 _NO_IDS = np.zeros(0, np.int64)
@@ -313,6 +311,6 @@ def warm_up() -> None:
         plan = plan_for(chain)
         assert plan is not None
         decide(plan, raw, [1, 2, 3], 0.5)
-        pick_one(plan, raw, np.array([1, 2], np.int64), np.array((7, 0), np.uint64))
+        one_row(plan, 7)(_read_only(raw), np.array([1, 2], np.int64), 0)
         pick_rows(plan, raw[None, :], [[1]], 7, 0, lambda work, n: work(0, n))
         pick_rows(plan, np.stack([raw, raw]), [[1], [2, 2]], 7, 0, lambda work, n: work(0, n))

@@ -157,6 +157,8 @@ class StepPick(NamedTuple):
 
 
 _FLOAT32 = np.dtype(np.float32)  # numpy's one float32 dtype: compared by identity per step
+_make_tuple = tuple.__new__
+_DECIDED = 0 if compiled is None else compiled.DECIDED
 
 
 class StepPicker:
@@ -167,24 +169,32 @@ class StepPicker:
     history and stream equals ``pick(chain, row, seed, [history], first_stream=stream)`` (the
     tests hold it so). Not for sharing between threads."""
 
-    __slots__ = ("_stream", "chain", "kernel", "plan", "seed")
+    __slots__ = ("_one_row", "chain", "kernel", "plan", "seed")
 
     def __init__(self, chain: Chain, vocab: int, seed: int, *, kernel: Kernel | None = None):
         _check_seed(seed)
         _check_token_ids(chain, vocab)
         self.chain, self.seed, self.kernel = chain, seed, kernel
         self.plan = _plan(chain, kernel)
-        self._stream = np.array((seed, 0), np.uint64)  # (seed, stream) as the kernel reads it
+        # A plan exists only with the compiled kernel.
+        self._one_row = (
+            None if compiled is None or self.plan is None else compiled.one_row(self.plan, seed)
+        )
 
     def __call__(self, row: F32, history: list[int] | NDArray[np.int64], stream: int) -> StepPick:
         # Other rows (float16/64, strided) take pick's path, which converts them.
-        if self.plan is not None and row.dtype is _FLOAT32 and row.flags.c_contiguous:
-            assert compiled is not None
-            self._stream[1] = stream
-            numbers = compiled.pick_one(self.plan, row, history, self._stream)
-            if numbers is not None:
-                token, kept, kept_mass, entropy, prob, logprob = numbers
-                return StepPick(token, kept, kept_mass, entropy, prob, logprob, None)
+        one_row = self._one_row
+        if one_row is not None and row.dtype is _FLOAT32 and row.flags.c_contiguous:
+            if isinstance(history, list):
+                assert compiled is not None and self.plan is not None
+                history = compiled.history_ids(self.plan, history)
+            if row.flags.writeable:  # one compiled type for every row (see compiled._read_only)
+                row = row.view()
+                row.flags.writeable = False
+            numbers = one_row(row, history, stream)
+            if numbers[0] == _DECIDED:
+                # tuple.__new__ in C, not the NamedTuple's __new__ in Python: once a token.
+                return _make_tuple(StepPick, (*numbers[1:], None))
         ids = history if isinstance(history, list) else history.tolist()
         seen = [ids] if self.chain.reads_history else None
         out = pick(self.chain, row, self.seed, seen, first_stream=stream, kernel=self.kernel)

@@ -947,12 +947,14 @@ def uniform(seed: Any, stream: Any) -> float:
 
 
 @njit(**_JIT)
-def pick_row(row: Any, ints: Any, floats: Any, history: Any, seed_stream: Any) -> Any:
-    """One row (1-D, read-only) with one plan row and its history, drawing with output
-    ``seed_stream[1]`` of SplitMix64 seeded with ``seed_stream[0]``: (status, token, kept
-    size, kept mass, entropy, prob, logprob), the numbers ``pick_rows`` writes, as one tuple
-    (a prompt step then reads no output arrays)."""
-    u = uniform(seed_stream[0], seed_stream[1])
+def pick_row(ints: Any, floats: Any, seed: Any, row: Any, history: Any, stream: int) -> Any:
+    """One row (1-D, read-only) with one plan row and its history (all of it: the penalties
+    take their windows), drawing with output ``stream`` of SplitMix64 seeded with ``seed[0]``
+    (a uint64 array, as a seed may not fit an int64): (status, token, kept size, kept mass,
+    entropy, prob, logprob), the numbers ``pick_rows`` writes, as one tuple (a prompt step then
+    reads no output arrays). The plan and seed come first, so that a ``functools.partial`` can
+    hold them for a run (``compiled.one_row``)."""
+    u = uniform(seed[0], np.uint64(stream))
     decided = decide_row(row, ints, floats, history, u)
     return (
         decided[0],

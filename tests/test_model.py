@@ -6,6 +6,7 @@ split in service/model/corpus; nothing is downloaded.
 
 from __future__ import annotations
 
+import codecs
 import gzip
 import json
 import math
@@ -96,6 +97,25 @@ def test_incremental_text_never_splits_a_character(model: Model) -> None:
     assert all("\ufffd" not in p for p in pieces)
     assert any(p == "" for p in pieces)  # some bytes were held back until complete
     assert cont.finish == "budget" and cont.tokens == ids
+
+
+def test_pieces_equal_an_incremental_utf8_decoder_on_random_ids(model: Model) -> None:
+    """Random id streams (many split characters among them): the pieces a continuation yields
+    join to what Python's own incremental UTF-8 decoder makes of the ids' bytes, piece by
+    piece (the runner hands whole-text ids over without the decoder when it holds nothing)."""
+    rng = np.random.default_rng(9)
+    table = model._token_bytes
+    assert table is not None
+    split = [i for i, b in enumerate(table) if b and b[-1] >= 0x80]  # ids ending mid-character
+    for trial in range(100):
+        ids = [int(i) for i in rng.integers(0, model.info.vocab_size, 40)]
+        ids[::3] = [split[int(k)] for k in rng.integers(0, len(split), len(ids[::3]))]
+        cont = model.generate([model.info.end_id], len(ids), forced(ids), end_id=None)
+        pieces = [piece for _, piece in cont]
+        decoder = codecs.getincrementaldecoder("utf-8")(errors="replace")
+        want = [decoder.decode(table[i]) for i in ids]
+        want[-1] += decoder.decode(b"", final=True)
+        assert pieces == want, trial
 
 
 # -- the cache -----------------------------------------------------------------------------------

@@ -154,6 +154,13 @@ def _byte_decoder() -> dict[str, int]:
     return table
 
 
+def _whole_text(data: bytes) -> str | None:
+    try:
+        return data.decode("utf-8")
+    except UnicodeDecodeError:
+        return None
+
+
 class _Detokenizer:
     """Turns ids into text incrementally without ever splitting a UTF-8 character.
 
@@ -172,6 +179,11 @@ class _Detokenizer:
     def push(self, token_id: int) -> str:
         table = self._model._token_bytes
         if table is not None:
+            # Most ids are whole UTF-8 text: with nothing held back, that text is what the
+            # decoder would give (its buffer is the bytes it holds back).
+            whole = self._model._token_texts[token_id]
+            if whole is not None and not self._utf8.buffer:
+                return whole
             return self._utf8.decode(table[token_id] if token_id < len(table) else b"")
         self._ids.append(token_id)
         text = self._model.decode(self._ids)
@@ -255,6 +267,8 @@ class Model:
             raise ModelError(f"{info.folder / 'model.onnx'}: cannot be loaded ({e})") from e
         self._check_layout()
         self._token_bytes = self._byte_table()
+        # Each id's bytes as text when they are whole UTF-8 on their own, else None.
+        self._token_texts = [_whole_text(b) for b in self._token_bytes or ()]
 
     # -- validation --------------------------------------------------------------------------
 

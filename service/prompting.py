@@ -80,6 +80,7 @@ class PromptRun:
         self._pick = StepPicker(chain, model.info.vocab_size, self.seed, kernel=kernel)
         # Raises PromptTooLong / PromptError before any model call.
         self._continuation: Continuation = model.generate(prompt, budget, self._step, stop=stop)
+        self._steps = iter(self._continuation)
         # The ids the penalties see, kept as the kernel reads them (the model's list converted
         # on every step cost a prompt step more than the penalty itself): the prompt after its
         # start marker, then every token picked.
@@ -123,7 +124,7 @@ class PromptRun:
         return self
 
     def __next__(self) -> StepRecord:
-        token, text = next(self._continuation)  # each step follows one _step call
+        token, text = next(self._steps)  # each step follows one _step call
         out = self._last
         assert out is not None and out.token == token
         record = StepRecord(

@@ -220,14 +220,11 @@ class Continuation:
     def text(self) -> str:
         return "".join(self.pieces)
 
-    def __iter__(self) -> Continuation:
-        return self
+    def __iter__(self) -> Iterator[Step]:
+        return self._steps  # the generator itself, which keeps tokens and pieces
 
     def __next__(self) -> Step:
-        step = next(self._steps)
-        self.tokens.append(step.token_id)
-        self.pieces.append(step.text)
-        return step
+        return next(self._steps)
 
     def close(self) -> None:
         close = getattr(self._steps, "close", None)
@@ -417,6 +414,7 @@ class Model:
         history = list(ids)
         detok = _Detokenizer(self)
         pending = ""  # released by the detokenizer, held back as a possible start of a stop text
+        tokens, pieces = cont.tokens, cont.pieces
         logits, past = self.forward(np.asarray([history], np.int64), self.empty_cache())
         for n in range(budget):
             if n > 0:
@@ -437,27 +435,34 @@ class Model:
             if not 0 <= token < row.shape[0]:
                 raise ValueError(f"step_fn returned id {token}, outside 0..{row.shape[0] - 1}")
             history.append(token)
-            last_step = n == budget - 1
+            done = False
             if token == end:
-                cont.finish = "end"
-                yield Step(token, pending + detok.flush())
-                return
-            pending += detok.push(token)
-            if last_step:
-                pending += detok.flush()
-                cont.finish = "budget"
-            if not stops:
-                piece, pending = pending, ""
-                yield Step(token, piece)
-                continue
-            hits = [i for i in (pending.find(s) for s in stops) if i >= 0]
-            if hits:
-                cont.finish = "stop"
-                yield Step(token, pending[: min(hits)])
-                return
-            hold = 0 if last_step else _held_back(pending, stops)
-            piece, pending = pending[: len(pending) - hold], pending[len(pending) - hold :]
+                cont.finish, done = "end", True
+                piece = pending + detok.flush()
+            else:
+                pending += detok.push(token)
+                last_step = n == budget - 1
+                if last_step:
+                    pending += detok.flush()
+                    cont.finish = "budget"
+                if not stops:
+                    piece, pending = pending, ""
+                else:
+                    hits = [i for i in (pending.find(s) for s in stops) if i >= 0]
+                    if hits:
+                        cont.finish, done = "stop", True
+                        piece = pending[: min(hits)]
+                    else:
+                        hold = 0 if last_step else _held_back(pending, stops)
+                        cut = len(pending) - hold
+                        piece, pending = pending[:cut], pending[cut:]
+            # Kept here rather than by Continuation.__next__: a caller iterates this generator
+            # itself, one Python frame fewer a step.
+            tokens.append(token)
+            pieces.append(piece)
             yield Step(token, piece)
+            if done:
+                return
         cont.finish = "budget"
 
 

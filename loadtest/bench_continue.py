@@ -4,18 +4,21 @@ All in one run, on the bundled model with one onnxruntime thread everywhere:
 
 - **bare loop**: onnxruntime alone, key/value cache, greedy argmax, no tokenizer work after the
   prompt: the floor any prompt path on this model pays;
-- **policy work alone**: ``pick`` on the recorded logits rows of a continuation, per token;
+- **policy work alone**: the ``StepPicker`` a continuation calls, on the recorded logits rows
+  of a continuation, per token;
 - **in process**: :class:`service.prompting.PromptRun` (model + policy + detokenizer), no HTTP;
 - **keepset over HTTP**: a real ``keepset serve`` (one worker) on 127.0.0.1, one client sending
   ``/v1/continue`` requests one after another, plain JSON answers, and the same request
-  streamed (Server-Sent Events, every step read as it comes).
+  streamed (Server-Sent Events, every step read as it comes); the repeats are spread over
+  ``--servers`` server processes started one after another, as a process's own speed varies.
 
 The policies come from a private registry with two bench policies that never stop early (the end
 token is banned and there is no stop text), so every request produces exactly ``budget`` tokens:
 ``bench-greedy`` and ``bench-chain`` (the prompt-book demo chain: repetition penalty,
 temperature 0.9, top_k 200, typical 0.95). Every loop is bounded in count and time.
 
-    .venv/bin/python loadtest/bench_continue.py [--budget 128] [--repeats 25] [--out FILE]
+    .venv/bin/python loadtest/bench_continue.py [--budget 128] [--repeats 25] [--servers 5]
+        [--out FILE]
 """
 
 from __future__ import annotations
@@ -177,6 +180,7 @@ def main() -> None:
     # Nine repeats left the medians 10 points apart from run to run on this machine; 25 agree
     # within a few.
     parser.add_argument("--repeats", type=int, default=25)
+    parser.add_argument("--servers", type=int, default=5, help="server processes, one at a time")
     parser.add_argument("--out", type=Path, default=ROOT / "loadtest/results/continue.json")
     args = parser.parse_args()
     budget, repeats = args.budget, args.repeats
@@ -185,47 +189,64 @@ def main() -> None:
     model = Model(BUNDLED, threads=1)
     # This machine's speed drifts by tens of percent over minutes, so every repeat times the
     # bare loop, the in-process run and the HTTP request back to back, and the ratios are
-    # taken per repeat before the median.
+    # taken per repeat before the median. A server process can also run the model a few
+    # percent slower or faster than the bench's own for the whole of its life (where its
+    # memory landed: one in five here gave an HTTP figure 4 points off the others), so the
+    # repeats are spread over ``--servers`` processes, started one after another.
     samples: dict[str, dict[str, list[float]]] = {n: {} for n in CHAINS}
+    per_server: dict[str, list[tuple[float, float]]] = {n: [] for n in CHAINS}
+    rounds = [len(part) for part in np.array_split(np.arange(repeats), args.servers)]
+    repeat = 0
     with tempfile.TemporaryDirectory(prefix="keepset-bench-") as tmp:
-        servers: dict[str, tuple[subprocess.Popen[bytes], int]] = {}
-        try:
-            for name in CHAINS:
-                registry = Path(tmp) / name / "policies"
-                bench_registry(registry, budget)
-                servers[name] = start_server(registry, name)
-            conns = {
-                name: http.client.HTTPConnection("127.0.0.1", port, timeout=60)
-                for name, (_, port) in servers.items()
-            }
-            for name in CHAINS:  # warm-up: first model calls, first request per server
-                bare_loop(model, budget)
-                in_process(model, name, budget, 0)
-                one_http_request(conns[name], name, budget, 0)
-                one_streamed_request(conns[name], name, budget, 0)
-            for repeat in range(repeats):
+        for name in CHAINS:
+            bench_registry(Path(tmp) / name / "policies", budget)
+        for count in rounds:
+            servers: dict[str, tuple[subprocess.Popen[bytes], int]] = {}
+            try:
                 for name in CHAINS:
-                    bare = bare_loop(model, budget)
-                    local = in_process(model, name, budget, repeat)[0]
-                    served = one_http_request(conns[name], name, budget, repeat)
-                    streamed = one_streamed_request(conns[name], name, budget, repeat)
-                    got = samples[name]
-                    for key, value in (
-                        ("bare", bare),
-                        ("local", local),
-                        ("http", served),
-                        ("stream", streamed),
-                        ("local_ratio", local / bare),
-                        ("http_ratio", served / bare),
-                        ("stream_ratio", streamed / bare),
-                    ):
-                        got.setdefault(key, []).append(value)
-            for conn in conns.values():
-                conn.close()
-        finally:
-            for proc, _ in servers.values():
-                proc.terminate()
-                proc.wait(timeout=15)
+                    servers[name] = start_server(Path(tmp) / name / "policies", name)
+                conns = {
+                    name: http.client.HTTPConnection("127.0.0.1", port, timeout=60)
+                    for name, (_, port) in servers.items()
+                }
+                for name in CHAINS:  # warm-up: first model calls, first request per server
+                    bare_loop(model, budget)
+                    in_process(model, name, budget, 0)
+                    one_http_request(conns[name], name, budget, 0)
+                    one_streamed_request(conns[name], name, budget, 0)
+                mine: dict[str, dict[str, list[float]]] = {n: {} for n in CHAINS}
+                for _ in range(count):
+                    for name in CHAINS:
+                        bare = bare_loop(model, budget)
+                        local = in_process(model, name, budget, repeat)[0]
+                        served = one_http_request(conns[name], name, budget, repeat)
+                        streamed = one_streamed_request(conns[name], name, budget, repeat)
+                        for got in (samples[name], mine[name]):
+                            for key, value in (
+                                ("bare", bare),
+                                ("local", local),
+                                ("http", served),
+                                ("stream", streamed),
+                                ("local_ratio", local / bare),
+                                ("http_ratio", served / bare),
+                                ("stream_ratio", streamed / bare),
+                            ):
+                                got.setdefault(key, []).append(value)
+                    repeat += 1
+                for name in CHAINS:
+                    here = mine[name]
+                    per_server[name].append(
+                        (
+                            statistics.median(here["http_ratio"]) - 1,
+                            statistics.median(here["stream_ratio"]) - 1,
+                        )
+                    )
+                for conn in conns.values():
+                    conn.close()
+            finally:
+                for proc, _ in servers.values():
+                    proc.terminate()
+                    proc.wait(timeout=15)
     results: dict[str, Any] = {"budget": budget, "repeats": repeats, "policies": {}}
     for name, got in samples.items():
         median = {key: statistics.median(values) for key, values in got.items()}
@@ -238,8 +259,13 @@ def main() -> None:
             "http_slower_than_bare": median["http_ratio"] - 1,
             "streamed_tokens_per_s": budget / median["stream"],
             "streamed_slower_than_bare": median["stream_ratio"] - 1,
+            "http_slower_per_server": [h for h, _ in per_server[name]],
+            "streamed_slower_per_server": [t for _, t in per_server[name]],
         }
-    print(f"budget {budget} tokens, one client, median of {repeats} interleaved repeats")
+    print(
+        f"budget {budget} tokens, one client, median of {repeats} interleaved repeats "
+        f"over {len(rounds)} server processes"
+    )
     print(
         f"{'policy':<14}{'bare tok/s':>11}{'in-process':>11}{'HTTP':>7}"
         f"{'streamed':>9}{'in-process vs bare':>20}{'HTTP vs bare':>14}{'streamed vs bare':>18}"
@@ -253,6 +279,14 @@ def main() -> None:
             f"{row['http_slower_than_bare'] * 100:>13.1f}%"
             f"{row['streamed_slower_than_bare'] * 100:>17.1f}%{row['policy_ms_per_token']:>17.3f}"
         )
+    for name, row in results["policies"].items():
+        spread = ", ".join(
+            f"{h * 100:.1f}/{t * 100:.1f}"
+            for h, t in zip(
+                row["http_slower_per_server"], row["streamed_slower_per_server"], strict=True
+            )
+        )
+        print(f"{name}: HTTP/streamed % slower per server process: {spread}")
     args.out.parent.mkdir(parents=True, exist_ok=True)
     args.out.write_text(json.dumps(results, indent=2) + "\n")
 

@@ -163,11 +163,12 @@ _DECIDED = 0 if compiled is None else compiled.DECIDED
 
 class StepPicker:
     """``pick`` prepared for a stream of single rows from a trusted source (the model runner:
-    float32 rows of one vocabulary, histories of ids it made itself). The chain is checked
-    against the vocabulary and the seed once, here; a call then checks nothing more and reuses
-    its arrays, so a prompt step pays for the kernel and little else. Calling it with row,
-    history and stream equals ``pick(chain, row, seed, [history], first_stream=stream)`` (the
-    tests hold it so). Not for sharing between threads."""
+    float32 rows of one vocabulary, histories of ids it made itself, as a list or an int64
+    array the kernel reads in place). The chain is checked against the vocabulary and the seed
+    once, here; a call then checks nothing more and goes straight to the kernel's one-row
+    entry, so a prompt step pays for the kernel and little else. Calling it with row, history
+    and stream equals ``pick(chain, row, seed, [history], first_stream=stream)`` (the tests
+    hold it so)."""
 
     __slots__ = ("_one_row", "chain", "kernel", "plan", "seed")
 

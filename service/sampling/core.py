@@ -643,7 +643,7 @@ def _in_parallel(work: Callable[[int, int], None], n: int, workers: int) -> None
     if workers == 1:
         work(0, n)
         return
-    edges = np.linspace(0, n, workers + 1).astype(int).tolist()
+    edges = [n * k // workers for k in range(workers + 1)]  # np.linspace's split, in ints
     parts = list(itertools.pairwise(edges))
     # The calling thread takes the first part itself: one thread hand-off fewer per batch.
     others = [_pool(workers - 1).submit(work, lo, hi) for lo, hi in parts[1:]]

@@ -62,9 +62,9 @@ class Live:
     outcomes: OutcomeStore | None = None
     # Set when KEEPSET_SHM_DIR is: the segments' mappings this worker keeps open.
     segment_maps: SegmentMaps | None = None
-    # The threads plain continuations run in: a hand-off to an executor of our own starts a
-    # run 0.15 ms sooner than one through anyio's thread limiter. The app sizes it to
-    # KEEPSET_MAX_IN_FLIGHT, so that every admitted request runs at once, as before.
+    # The threads continuations run in, plain and streamed: a hand-off to an executor of our
+    # own starts a run 0.15 ms sooner than one through anyio's thread limiter. The app sizes it
+    # to KEEPSET_MAX_IN_FLIGHT, so that every admitted request runs at once, as before.
     continuations: ThreadPoolExecutor = field(
         default_factory=lambda: ThreadPoolExecutor(thread_name_prefix="keepset-continue")
     )

@@ -955,16 +955,15 @@ def pick_row(ints: Any, floats: Any, seed: Any, row: Any, history: Any, stream: 
     reads no output arrays). The plan and seed come first, so that a ``functools.partial`` can
     hold them for a run (``compiled.one_row``)."""
     u = uniform(seed[0], np.uint64(stream))
-    decided = decide_row(row, ints, floats, history, u)
-    return (
-        decided[0],
-        decided[3],
-        decided[1].size,
-        decided[5],
-        decided[6],
-        decided[4],
-        decided[7],
-    )
+    return _numbers(decide_row(row, ints, floats, history, u))
+
+
+@njit(**_JIT)
+def _numbers(decided: Any) -> Any:
+    """A ``decide_row`` result as the numbers a pick hands back: (status, token, kept size,
+    kept mass, entropy, prob, logprob)."""
+    status, kept, _, token, prob, kept_mass, entropy, logprob = decided
+    return status, token, kept.size, kept_mass, entropy, prob, logprob
 
 
 @njit(**_JIT)
@@ -993,9 +992,9 @@ def pick_rows(
         past = min(b, histories.shape[0] - 1)
         u = uniform(seed, first_stream + np.uint64(b))
         history = histories[past, : lengths[past]]
-        decided = decide_row(rows[b], ints[plan], floats[plan], history, u)
-        out_ints[0, b], out_ints[1, b], out_ints[2, b] = decided[0], decided[3], decided[1].size
-        out_floats[0, b], out_floats[1, b] = decided[5], decided[6]
-        out_floats[2, b], out_floats[3, b] = decided[4], decided[7]
-        undecided += decided[0] != DECIDED
+        numbers = _numbers(decide_row(rows[b], ints[plan], floats[plan], history, u))
+        out_ints[0, b], out_ints[1, b], out_ints[2, b] = numbers[0], numbers[1], numbers[2]
+        out_floats[0, b], out_floats[1, b] = numbers[3], numbers[4]
+        out_floats[2, b], out_floats[3, b] = numbers[5], numbers[6]
+        undecided += numbers[0] != DECIDED
     return undecided

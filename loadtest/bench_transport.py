@@ -72,6 +72,24 @@ def async_step_ms(
     return loop.run_until_complete(run())
 
 
+def transport_ms(
+    loop: asyncio.AbstractEventLoop,
+    name: str,
+    side: tuple[dict[str, Client], AsyncClient],
+    block: SharedLogits,
+    logits: np.ndarray,
+    steps: int,
+) -> float:
+    """Median ms of ``steps`` steps of transport ``name`` with one side's clients (keepset's
+    or the floor's): the in-place ones from ``block``, the others copying ``logits``."""
+    clients, async_client = side
+    if name == "async in place":
+        return async_step_ms(loop, async_client, block, steps)
+    if name == "shm in place":
+        return step_ms(clients["shm"], block, steps)
+    return step_ms(clients[name], logits, steps)
+
+
 def main() -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--repeats", type=int, default=5)
@@ -150,27 +168,16 @@ def main() -> int:
             keepset, port = start_server()
             ours, async_ours = keepset_clients(port)
             try:
+                ks_side, floor_side = (ours, async_ours), (floors, async_floor)
                 # Untimed: a new process's first steps map the segments and touch their pages.
                 for size, logits in batches.items():
                     for name in transports:
-                        if name == "async in place":
-                            async_step_ms(loop, async_ours, blocks[(*size, 0)], 2)
-                        elif name == "shm in place":
-                            step_ms(ours["shm"], blocks[(*size, 0)], 2)
-                        else:
-                            step_ms(ours[name], logits, 2)
+                        transport_ms(loop, name, ks_side, blocks[(*size, 0)], logits, 2)
                 for size, logits in batches.items():
                     pick_ms[size].append(in_process_ms(logits, count=max(20, steps)))
                     for name in transports:
-                        if name == "async in place":
-                            k = async_step_ms(loop, async_ours, blocks[(*size, 0)], steps)
-                            f = async_step_ms(loop, async_floor, blocks[(*size, 1)], steps)
-                        elif name == "shm in place":
-                            k = step_ms(ours["shm"], blocks[(*size, 0)], steps)
-                            f = step_ms(floors["shm"], blocks[(*size, 1)], steps)
-                        else:
-                            k = step_ms(ours[name], logits, steps)
-                            f = step_ms(floors[name], logits, steps)
+                        k = transport_ms(loop, name, ks_side, blocks[(*size, 0)], logits, steps)
+                        f = transport_ms(loop, name, floor_side, blocks[(*size, 1)], logits, steps)
                         keepset_ms[(*size, name)].append(k)
                         floor_ms[(*size, name)].append(f)
                         ratio[(*size, name)].append(k / f)

@@ -195,7 +195,8 @@ def main() -> None:
     # repeats are spread over ``--servers`` processes, started one after another.
     samples: dict[str, dict[str, list[float]]] = {n: {} for n in CHAINS}
     per_server: dict[str, list[tuple[float, float]]] = {n: [] for n in CHAINS}
-    rounds = [len(part) for part in np.array_split(np.arange(repeats), args.servers)]
+    servers = max(1, min(args.servers, repeats))
+    rounds = [len(part) for part in np.array_split(np.arange(repeats), servers)]
     repeat = 0
     with tempfile.TemporaryDirectory(prefix="keepset-bench-") as tmp:
         for name in CHAINS:
@@ -214,32 +215,30 @@ def main() -> None:
                     in_process(model, name, budget, 0)
                     one_http_request(conns[name], name, budget, 0)
                     one_streamed_request(conns[name], name, budget, 0)
-                mine: dict[str, dict[str, list[float]]] = {n: {} for n in CHAINS}
+                mine: dict[str, tuple[list[float], list[float]]] = {n: ([], []) for n in CHAINS}
                 for _ in range(count):
                     for name in CHAINS:
                         bare = bare_loop(model, budget)
                         local = in_process(model, name, budget, repeat)[0]
                         served = one_http_request(conns[name], name, budget, repeat)
                         streamed = one_streamed_request(conns[name], name, budget, repeat)
-                        for got in (samples[name], mine[name]):
-                            for key, value in (
-                                ("bare", bare),
-                                ("local", local),
-                                ("http", served),
-                                ("stream", streamed),
-                                ("local_ratio", local / bare),
-                                ("http_ratio", served / bare),
-                                ("stream_ratio", streamed / bare),
-                            ):
-                                got.setdefault(key, []).append(value)
+                        got = samples[name]
+                        for key, value in (
+                            ("bare", bare),
+                            ("local", local),
+                            ("http", served),
+                            ("stream", streamed),
+                            ("local_ratio", local / bare),
+                            ("http_ratio", served / bare),
+                            ("stream_ratio", streamed / bare),
+                        ):
+                            got.setdefault(key, []).append(value)
+                        mine[name][0].append(served / bare)
+                        mine[name][1].append(streamed / bare)
                     repeat += 1
-                for name in CHAINS:
-                    here = mine[name]
+                for name, (http_ratios, stream_ratios) in mine.items():
                     per_server[name].append(
-                        (
-                            statistics.median(here["http_ratio"]) - 1,
-                            statistics.median(here["stream_ratio"]) - 1,
-                        )
+                        (statistics.median(http_ratios) - 1, statistics.median(stream_ratios) - 1)
                     )
                 for conn in conns.values():
                     conn.close()

@@ -138,10 +138,36 @@ def _request_head(target: str, fixed: bytes, content_type: str, length: int) -> 
     )
 
 
+def _whole_answer(data: bytes) -> Answer | None:
+    """``data`` as one whole answer with a ``Content-Length`` body, the shape of every keepset
+    answer when the first read brings all of it; None for anything else, which
+    :func:`read_answer` then reads. Skipping the generator's steps saves about 10 µs a pick,
+    on the caches a pick has just emptied."""
+    end = data.find(b"\r\n\r\n")
+    if end < 0:
+        return None
+    status, headers = _head(data[:end])
+    length = headers.get("content-length", "")
+    if (
+        status < 200
+        or status in (204, 304)
+        or "transfer-encoding" in headers
+        or not length.isdigit()
+        or int(length) != len(data) - end - 4
+    ):
+        return None
+    return Answer(status, data[end + 4 :], headers.get("connection", "").lower() != "close")
+
+
 def _receive(sock: socket.socket) -> Answer:
+    first = sock.recv(_READ_BYTES)
+    whole = _whole_answer(first)
+    if whole is not None:
+        return whole
     reader = read_answer()
     next(reader)
     try:
+        reader.send(first)
         while True:
             reader.send(sock.recv(_READ_BYTES))
     except StopIteration as done:
@@ -334,9 +360,14 @@ def _close(writer: asyncio.StreamWriter | None) -> None:
 
 
 async def _areceive(reader: asyncio.StreamReader) -> Answer:
+    first = await reader.read(_READ_BYTES)
+    whole = _whole_answer(first)
+    if whole is not None:
+        return whole
     answer = read_answer()
     next(answer)
     try:
+        answer.send(first)
         while True:
             answer.send(await reader.read(_READ_BYTES))
     except StopIteration as done:

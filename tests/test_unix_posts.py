@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
+import itertools
 import shutil
 import signal
 import socket
@@ -23,7 +24,14 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from service.unix_posts import AsyncUnixPoster, UnixPoster
+from service.unix_posts import (
+    Answer,
+    AsyncUnixPoster,
+    ProtocolError,
+    UnixPoster,
+    _whole_answer,
+    read_answer,
+)
 
 
 class Scripted:
@@ -303,3 +311,56 @@ def test_answers_split_anywhere_read_the_same(cuts: list[int], chunked: bool, ki
     finally:
         scripted.close()
         shutil.rmtree(folder)
+
+
+def _read_whole_stream(data: bytes) -> Answer | str:
+    """What the generator makes of ``data`` followed by the end of the stream."""
+    reader = read_answer()
+    next(reader)
+    try:
+        reader.send(data)
+        reader.send(b"")
+    except StopIteration as done:
+        answer: Answer = done.value
+        return answer
+    except ProtocolError as exc:
+        return f"error: {exc}"
+    return "wants more"
+
+
+def test_a_whole_answer_in_one_read_is_read_as_the_generator_reads_it() -> None:
+    """The shortcut for an answer that arrives whole (``_whole_answer``) either declines or
+    gives exactly what ``read_answer`` gives for the same bytes: every status, set of up to
+    three framing headers, body and bytes after the answer below."""
+    statuses = [b"200 OK", b"404 Not Found", b"204 No Content", b"100 Continue"]
+    header_lines = [
+        b"content-type: application/json",
+        b"Connection: close",
+        b"connection: keep-alive",
+        b"Transfer-Encoding: chunked",
+        b"Content-Length: 7",
+        b"content-length: 8",
+        b"content-length: x",
+    ]
+    bodies = [b"", b'{"a":1}', b'{"a":12}', b"0\r\n\r\n"]
+    taken = 0
+    for count in range(4):
+        for headers in itertools.combinations(header_lines, count):
+            for status, body, then in itertools.product(statuses, bodies, [b"", OK]):
+                data = b"HTTP/1.1 " + status + b"\r\n" + b"".join(h + b"\r\n" for h in headers)
+                data += b"\r\n" + body + then
+                whole = _whole_answer(data)
+                if whole is not None:
+                    taken += 1
+                    assert whole == _read_whole_stream(data), data
+    assert taken > 0
+
+
+def test_the_shortcut_takes_a_plain_answer() -> None:
+    """It is a shortcut only if it takes the usual answer: a status, headers, a
+    Content-Length body and nothing after it."""
+    assert _whole_answer(OK) == Answer(200, b'{"a":1}', True)
+    closing = OK.replace(b"\r\n\r\n", b"\r\nConnection: close\r\n\r\n")
+    assert _whole_answer(closing) == Answer(200, b'{"a":1}', False)
+    assert _whole_answer(OK[:-1]) is None  # a body still on its way
+    assert _whole_answer(OK + OK) is None  # something after it

@@ -12,7 +12,7 @@ from typing import Any
 
 import numpy as np
 import pytest
-from conftest import assert_problem, auth, in_process
+from conftest import ROOT, assert_problem, auth, in_process
 from fastapi.testclient import TestClient
 from prometheus_client import REGISTRY
 
@@ -60,6 +60,28 @@ def test_picks_are_counted_and_other_methods_reach_the_router(client: TestClient
     assert REGISTRY.get_sample_value("keepset_rows_total", labels) == before + 3
     assert_problem(client.get("/v1/pick", headers=auth("usher-desk")), 405)
     assert_problem(client.post("/v1/pick", json=GOOD), 401, "Bearer")
+
+
+def test_a_crash_in_a_hot_path_is_a_500_problem_and_reaches_the_server(
+    registry: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """The hot paths skip the framework's server-error middleware, so they answer a crash as it
+    would: a 500 problem document, and the error goes on to the server, which logs it."""
+
+    def broken(*args: Any) -> None:
+        raise RuntimeError("a bug")
+
+    monkeypatch.setattr("service.app.route_of", broken)
+    settings = Settings(
+        policies=registry, keys=ROOT / "deploy" / "demo-keys.yaml", reload_poll_seconds=0
+    )
+    with TestClient(create_app(settings), raise_server_exceptions=False) as quiet:
+        for path, body in (("/v1/pick", GOOD), ("/v1/continue", {"prompt": "The lights"})):
+            answer = quiet.post(path, json=body, headers=auth("usher-desk"))
+            assert_problem(answer, 500, "log")
+            assert answer.json()["type"].endswith("internal")
+    with TestClient(create_app(settings)) as loud, pytest.raises(RuntimeError, match="a bug"):
+        loud.post("/v1/pick", json=GOOD, headers=auth("usher-desk"))
 
 
 def test_malformed_json(client: TestClient) -> None:

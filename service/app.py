@@ -589,9 +589,32 @@ async def _pick_answer(
             await shadow()
 
     # orjson: the standard encoder took a tenth of a 32-row pick's time outside the sampler.
-    return Response(
-        orjson.dumps(body), media_type="application/json", background=BackgroundTask(account)
-    )
+    return _JsonAnswer(orjson.dumps(body), account)
+
+
+class _JsonAnswer(Response):
+    """A 200 JSON answer, and ``after``, awaited once it is sent. Starlette's ``Response``
+    works out its headers and wraps the task on every answer, about 10 µs of a pick's answer
+    on the caches the pick has just emptied; these two headers are all a pick's answer has."""
+
+    media_type = "application/json"
+
+    def __init__(self, body: bytes, after: Callable[[], Awaitable[None]]):
+        self.status_code = 200
+        self.body = body
+        self.after = after
+        self.background = None  # a framework route may set it; it runs after ``after``
+        self.raw_headers = [
+            (b"content-length", b"%d" % len(body)),
+            (b"content-type", b"application/json"),
+        ]
+
+    async def __call__(self, scope: Any, receive: Any, send: Any) -> None:
+        await send({"type": "http.response.start", "status": 200, "headers": self.raw_headers})
+        await send({"type": "http.response.body", "body": self.body})
+        await self.after()
+        if self.background is not None:
+            await self.background()
 
 
 async def _cancel_on_disconnect(request: Request, cancel: threading.Event) -> None:

@@ -84,6 +84,28 @@ def test_a_crash_in_a_hot_path_is_a_500_problem_and_reaches_the_server(
         loud.post("/v1/pick", json=GOOD, headers=auth("usher-desk"))
 
 
+def test_under_a_root_path_a_pick_takes_the_framework_route(registry: Path) -> None:
+    """An app served under a root path skips the hot paths; the framework's route answers the
+    same, and counts the rows once the answer is sent, as the lane does."""
+    settings = Settings(
+        policies=registry, keys=ROOT / "deploy" / "demo-keys.yaml", reload_poll_seconds=0
+    )
+    labels = {"client": "usher-desk", "policy": "box-office", "version": "1", "arm": "0"}
+    body = {**GOOD, "seed": 5}
+    with TestClient(create_app(settings)) as plain:
+        lane = plain.post("/v1/pick", json=body, headers=auth("usher-desk"))
+    before = REGISTRY.get_sample_value("keepset_rows_total", labels) or 0.0
+    with TestClient(create_app(settings), root_path="/sidecar") as nested:
+        routed = nested.post("/sidecar/v1/pick", json=body, headers=auth("usher-desk"))
+    assert routed.status_code == 200 and routed.headers["content-type"] == "application/json"
+    # The entropy is a float32 sum, whose last digits differ between the compiled kernel and
+    # the numpy path (an app may answer before its kernel is ready); the rest is exact.
+    [lane_row], [routed_row] = lane.json()["rows"], routed.json()["rows"]
+    assert routed_row.pop("entropy") == pytest.approx(lane_row.pop("entropy"), rel=1e-6)
+    assert routed_row == lane_row
+    assert REGISTRY.get_sample_value("keepset_rows_total", labels) == before + 1
+
+
 def test_malformed_json(client: TestClient) -> None:
     r = client.post(
         "/v1/pick",

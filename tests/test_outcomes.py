@@ -6,10 +6,13 @@ from __future__ import annotations
 
 import asyncio
 import base64
+import hashlib
+import hmac
 import json
 import os
 import random
 import shutil
+import struct
 import subprocess
 import sys
 import time
@@ -75,6 +78,44 @@ def test_request_id_round_trip_and_its_proof() -> None:
     assert ids.mint(BOOK, "prompt-book", 4, "candidate") != ids.mint(
         BOOK, "prompt-book", 4, "candidate"
     )  # the nonce
+
+
+def test_request_id_macs_are_the_documented_ones() -> None:
+    """The MAC of a minted id is keyed BLAKE2b-128 (RFC 7693) over the framed client and the
+    payload, computed here with hashlib from the layout in request_ids' docstring; an id of
+    the earlier format, its MAC truncated HMAC-SHA256 (RFC 2104) made here with hmac, still
+    verifies; a secret longer than a BLAKE2b key works."""
+    secret = "a secret"
+    framed = len(BOOK).to_bytes(2, "big") + BOOK.encode()
+    token = RequestIds(secret).mint(BOOK, "prompt-book", 4, "candidate", now=1_800_000_000)
+    raw = base64.urlsafe_b64decode(token + "=" * (-len(token) % 4))
+    payload, mac = raw[:-16], raw[-16:]
+    assert payload[0] == 2
+    expected = hashlib.blake2b(
+        framed + payload, key=secret.encode(), digest_size=16, person=b"keepset req id"
+    )
+    assert mac == expected.digest()
+
+    # Format 1: format byte, u32 issued, 8-byte nonce, u32 version, u8 + policy, u16 + arm.
+    old = struct.pack(">BI8sI", 1, 1_700_000_000, b"12345678", 3)
+    old += bytes([len("surtitles")]) + b"surtitles" + (7).to_bytes(2, "big") + b"control"
+    context = b"keepset request id\x00"
+    old_mac = hmac.new(secret.encode(), context + framed + old, hashlib.sha256).digest()[:16]
+    old_id = base64.urlsafe_b64encode(old + old_mac).rstrip(b"=").decode()
+    issued = RequestIds(secret).verify(BOOK, old_id)
+    assert issued is not None
+    assert (issued.issued, issued.policy, issued.version, issued.arm) == (
+        1_700_000_000,
+        "surtitles",
+        3,
+        "control",
+    )
+    assert RequestIds("another secret").verify(BOOK, old_id) is None
+
+    long_secret = "k" * 200
+    long_token = RequestIds(long_secret).mint(BOOK, "prompt-book", 4, "candidate")
+    assert RequestIds(long_secret).verify(BOOK, long_token) is not None
+    assert RequestIds("k" * 199).verify(BOOK, long_token) is None
 
 
 def test_routes_outcome_labels_are_checked() -> None:

@@ -21,6 +21,7 @@ import socket
 import subprocess
 import sys
 import time
+from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
@@ -196,13 +197,30 @@ def npy_bytes(array: np.ndarray) -> bytes:
     return buffer.getvalue()
 
 
+# Untimed work before every timing. After even a short idle spell this VM's CPUs need about
+# 10-20 ms of work to come back to full speed: after 30 ms asleep, a 32-row pick at V = 128 256
+# took 2.3, 1.8, 1.8, 1.4 ... ms before settling at 1.2 ms six picks later, and a
+# shared-memory step of the same batch 3.5 ms falling to 1.8 ms over nine steps. A ratio of
+# two timings is only fair when both start at full speed.
+WARM_MS = 30.0
+
+
+def warm_up(step: Callable[[], object], ms: float = WARM_MS) -> None:
+    """Run ``step`` untimed until ``ms`` have passed, and at least once."""
+    end = time.perf_counter() + ms / 1e3
+    step()
+    while time.perf_counter() < end:
+        step()
+
+
 def in_process_ms(logits: np.ndarray, count: int = 200) -> float:
-    """Median ms of ``pick`` with box-office@1's chain (what KEY is routed to) on ``logits``."""
+    """Median ms of ``pick`` with box-office@1's chain (what KEY is routed to) on ``logits``,
+    after :func:`warm_up`."""
     from service.registry import load_registry
     from service.sampling import pick
 
     chain = load_registry(ROOT / "policies").chain(("box-office", 1))
-    pick(chain, logits, seed=1)
+    warm_up(lambda: pick(chain, logits, seed=1))
     times = []
     for _ in range(count):
         t0 = time.perf_counter()

@@ -197,12 +197,14 @@ def npy_bytes(array: np.ndarray) -> bytes:
     return buffer.getvalue()
 
 
-# Untimed work before every timing. After even a short idle spell this VM's CPUs need about
-# 10-20 ms of work to come back to full speed: after 30 ms asleep, a 32-row pick at V = 128 256
-# took 2.3, 1.8, 1.8, 1.4 ... ms before settling at 1.2 ms six picks later, and a
-# shared-memory step of the same batch 3.5 ms falling to 1.8 ms over nine steps. A ratio of
-# two timings is only fair when both start at full speed.
-WARM_MS = 30.0
+# Untimed work before every timing. After an idle spell, or work that keeps one core busy and
+# the other idle, this VM's CPUs need 10-50 ms of work to come back to full speed: after 30 ms
+# asleep, a 32-row pick at V = 128 256 took 2.3, 1.8, 1.8, 1.4 ... ms before settling at 1.2 ms
+# six picks later, and a shared-memory step of the same batch 3.5 ms falling to 1.8 ms over
+# nine steps; after a client's copies into a segment, in-place steps ran at 2.4 ms for up to
+# 45 ms before settling at 1.7. A ratio of two timings is only fair when both start at full
+# speed.
+WARM_MS = 100.0
 
 
 def warm_up(step: Callable[[], object], ms: float = WARM_MS) -> None:

@@ -141,8 +141,8 @@ def _request_head(target: str, fixed: bytes, content_type: str, length: int) -> 
 def _whole_answer(data: bytes) -> Answer | None:
     """``data`` as one whole answer with a ``Content-Length`` body, the shape of every keepset
     answer when the first read brings all of it; None for anything else, which
-    :func:`read_answer` then reads. Skipping the generator's steps saves about 10 µs a pick,
-    on the caches a pick has just emptied."""
+    :func:`read_answer` then reads. Skipping the generator's steps took a 32-row answer's read
+    from 31 to 20 µs on caches emptied beforehand, though only about 3 µs in a real step."""
     end = data.find(b"\r\n\r\n")
     if end < 0:
         return None

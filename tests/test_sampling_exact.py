@@ -293,3 +293,28 @@ def test_largest_float64_values_as_a_stable_sort_ranks_them() -> None:
         for m in range(1, values.size):
             mask = kernel._largest(values, m)
             assert np.array_equal(np.flatnonzero(mask), np.sort(order[:m])), m
+
+
+def test_stable_order_is_numpys_stable_argsort() -> None:
+    """The kernel's radix ordering (typical and top_p prefixes) against numpy's
+    ``argsort(kind="stable")``: sizes on both sides of the merge-sort cut-over, exact ties,
+    signed zeros, infinities, NaN, keys that differ only below their top 32 bits (the
+    insertion pass), and a long run of those (past its bound, the merge sort)."""
+    kernel = compiled.kernel
+    rng = np.random.default_rng(43)
+    cases = []
+    for n in (1, 2, kernel._RADIX_FROM - 1, kernel._RADIX_FROM, 200, 1000):
+        cases += [
+            rng.standard_normal(n) * 3,
+            np.abs(rng.standard_normal(n)),
+            rng.integers(-3, 4, n).astype(np.float64),
+            rng.choice([0.0, -0.0, 1.0, -1.0], n),
+            rng.choice([np.inf, -np.inf, 5e-324, -5e-324, 1e300, 0.0, -0.0], n),
+            1.0 + rng.integers(0, 8, n) * 2.0**-40,  # equal in the top 32 bits, a few apart
+            1.0 + rng.permutation(n) * 2.0**-45,  # all equal there: past the bound
+        ]
+    with_nan = rng.standard_normal(300)
+    with_nan[[3, 100, 299]] = np.nan
+    cases.append(with_nan)
+    for key in cases:
+        assert np.array_equal(kernel.stable_order(key), np.argsort(key, kind="stable")), key

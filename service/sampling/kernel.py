@@ -531,11 +531,80 @@ def _keep(ids: Any, w: Any, keep: Any, min_keep: int) -> tuple[Any, Any]:
     return _most_probable(ids, w, min_keep)
 
 
+# Below this many keys numba's merge sort is quicker than the radix passes and their tables.
+_RADIX_FROM = 64
+_SIGN = np.uint64(1) << np.uint64(63)
+_HIGH = np.uint64(32)
+_BYTE = np.uint64(255)
+
+
+@njit(**_JIT)
+def stable_order(key: Any) -> Any:
+    """Positions of float64 ``key`` in (key asc, position asc) order: ``np.argsort(key,
+    kind="stable")``, NaN last included, and -0.0 equal to 0.0.
+
+    A merge sort's comparisons are branches the CPU cannot predict: for the few hundred
+    candidates of a typical set it took 8 us, most of that stage. Here the keys become
+    unsigned integers in the same order, and a least-significant-digit radix sort (stable by
+    construction) orders them by their top 32 bits in at most four byte passes, skipping a byte
+    every key shares; keys that share their top 32 bits (a relative gap under about 1e-6) are
+    then put in order by an insertion sort, bounded: past ``n`` moves the merge sort is cheaper
+    and runs instead."""
+    n = key.size
+    if n < _RADIX_FROM:
+        return np.argsort(key, kind="mergesort")
+    keys = np.empty(n, np.uint64)
+    bits = np.ascontiguousarray(key).view(np.int64)
+    for i in range(n):
+        v = key[i]
+        if v != v:
+            return np.argsort(key, kind="mergesort")
+        b = bits[i] if v != 0.0 else np.int64(0)
+        keys[i] = np.uint64(b) | _SIGN if b >= 0 else ~np.uint64(b)
+    counts = np.zeros((4, 256), np.int64)
+    for i in range(n):
+        k = keys[i] >> _HIGH
+        counts[0, k & _BYTE] += 1
+        counts[1, (k >> np.uint64(8)) & _BYTE] += 1
+        counts[2, (k >> np.uint64(16)) & _BYTE] += 1
+        counts[3, k >> np.uint64(24)] += 1
+    order = np.arange(n)
+    spare = np.empty(n, np.int64)
+    starts = np.empty(256, np.int64)
+    for d in range(4):
+        shift = np.uint64(32 + 8 * d)
+        if counts[d, (keys[0] >> shift) & _BYTE] == n:
+            continue
+        total = 0
+        for b in range(256):
+            starts[b] = total
+            total += counts[d, b]
+        for j in range(n):
+            i = order[j]
+            b = (keys[i] >> shift) & _BYTE
+            spare[starts[b]] = i
+            starts[b] += 1
+        order, spare = spare, order
+    moves = 0
+    for j in range(1, n):
+        i = order[j]
+        k = keys[i]
+        h = j
+        while h > 0 and keys[order[h - 1]] > k and (keys[order[h - 1]] >> _HIGH) == (k >> _HIGH):
+            order[h] = order[h - 1]
+            h -= 1
+        order[h] = i
+        moves += j - h
+        if moves > n:
+            return np.argsort(key, kind="mergesort")
+    return order
+
+
 @njit(**_JIT)
 def _prefix(key: Any, mass: Any, target: float) -> Any:
     """Mask of the shortest prefix in (key asc, position asc) order with mass >= target (all
     of it when no prefix reaches it)."""
-    order = np.argsort(key, kind="mergesort")
+    order = stable_order(key)
     keep = np.ones(key.size, np.bool_)
     total = 0.0
     for j in range(order.size):

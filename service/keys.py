@@ -79,11 +79,14 @@ class KeyRing:
         return found
 
     def identify(self, key: str, now: dt.datetime | None = None) -> Identity | None:
-        """Who presents ``key``, or None for an unknown or expired key."""
+        """Who presents ``key`` at ``now`` (default: the current time; without a zone, UTC), or
+        None for an unknown or expired key."""
         entry = self.match(key)
         if entry is None:
             return None
         identity, deadline = self._identities[entry]
+        if now is not None and now.tzinfo is None:
+            now = now.replace(tzinfo=dt.UTC)  # .timestamp() would read it as local time
         if (time.time() if now is None else now.timestamp()) >= deadline:
             return None
         return identity

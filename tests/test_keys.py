@@ -5,11 +5,13 @@ without a restart. Times are fixed in the unit tests, so nothing depends on the 
 
 from __future__ import annotations
 
+import contextlib
 import datetime as dt
 import os
 import subprocess
 import sys
 import time
+from collections.abc import Iterator
 from pathlib import Path
 
 import httpx
@@ -32,6 +34,11 @@ def test_rotation_keeps_the_old_key_for_its_overlap_only(tmp_path: Path) -> None
     for moment, old_ok in ((T0, True), (T0 + 2 * HOUR - dt.timedelta(seconds=1), True)):
         assert (ring.identify(old, moment) is not None) is old_ok
     assert ring.identify(old, T0 + 2 * HOUR) is None  # the window is half-open: [T0, T0 + 2h)
+    # A time without a zone is UTC, as in the keys file, whatever the machine's zone.
+    with _local_zone("Etc/GMT+5"):
+        naive = (T0 + 2 * HOUR).replace(tzinfo=None)
+        assert ring.identify(old, naive - dt.timedelta(seconds=1)) is not None
+        assert ring.identify(old, naive) is None
     assert ring.match(old) is not None  # still known, so the service can say "expired"
     assert ring.identify(new, T0 + 1000 * HOUR) is not None
     assert ring.names("client") == ["usher-desk"]  # one name, however many hashes
@@ -194,3 +201,19 @@ def test_a_running_server_picks_up_a_rotation_through_a_swapped_symlink(
         assert _pick(base, admin).status_code == 403  # still known: an admin key, not a client
     finally:
         stop_server(server)
+
+
+@contextlib.contextmanager
+def _local_zone(zone: str) -> Iterator[None]:
+    """The process's local time zone set to ``zone`` (POSIX ``TZ``) for a while."""
+    before = os.environ.get("TZ")
+    os.environ["TZ"] = zone
+    time.tzset()
+    try:
+        yield
+    finally:
+        if before is None:
+            del os.environ["TZ"]
+        else:
+            os.environ["TZ"] = before
+        time.tzset()

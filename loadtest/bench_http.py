@@ -21,7 +21,7 @@ import socket
 import subprocess
 import sys
 import time
-from collections.abc import Callable
+from collections.abc import Awaitable, Callable
 from pathlib import Path
 from typing import Any
 
@@ -213,6 +213,14 @@ def warm_up(step: Callable[[], object], ms: float = WARM_MS) -> None:
     step()
     while time.perf_counter() < end:
         step()
+
+
+async def awarm_up(step: Callable[[], Awaitable[object]], ms: float = WARM_MS) -> None:
+    """:func:`warm_up` for a step that is awaited."""
+    end = time.perf_counter() + ms / 1e3
+    await step()
+    while time.perf_counter() < end:
+        await step()
 
 
 def in_process_ms(logits: np.ndarray, count: int = 200) -> float:

@@ -38,7 +38,7 @@ from typing import Any
 import numpy as np
 from bench_http import (
     KEY,
-    WARM_MS,
+    awarm_up,
     in_process_ms,
     start_floor,
     start_keepset,
@@ -71,10 +71,7 @@ def async_step_ms(
     """``step_ms`` for the asyncio client, its steps awaited one after another in ``loop``."""
 
     async def run() -> float:
-        end = time.perf_counter() + WARM_MS / 1e3  # warm_up's rule, awaited
-        await client.pick(block, seed=1, routing_key="bench")
-        while time.perf_counter() < end:
-            await client.pick(block, seed=1, routing_key="bench")
+        await awarm_up(lambda: client.pick(block, seed=1, routing_key="bench"))
         times = []
         for i in range(steps):
             t0 = time.perf_counter()
